@@ -1,0 +1,101 @@
+//! Raw command-line arguments, as clap parses them.
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+/// kilter: can this explanation be trusted? Measures how far the inputs behind an
+/// explanation fall from a reference corpus.
+#[derive(Debug, Parser)]
+#[command(name = "kilter", version, about, long_about = None, propagate_version = true)]
+pub struct Cli {
+    /// No progress or summaries on stderr.
+    #[arg(long, global = true)]
+    pub quiet: bool,
+
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Fit a reference profile (embedding, covariance, neighbour index, calibration).
+    #[command(after_help = FIT_EXAMPLE)]
+    Fit(FitArgs),
+    /// Score inputs against a profile: distance from the data and calibrated p-values.
+    #[command(after_help = SCORE_EXAMPLE)]
+    Score(ScoreArgs),
+    /// Run the whole job on kilter's invented example scenario.
+    #[command(after_help = DEMO_EXAMPLE)]
+    Demo(DemoArgs),
+}
+
+const FIT_EXAMPLE: &str = "Example:
+  kilter fit --reference reference-corpora/wine.csv --label-column cultivar --out wine.kprofile";
+const SCORE_EXAMPLE: &str = "Example:
+  kilter score --profile wine.kprofile --input new_batch.csv --label-column cultivar --out scores.jsonl";
+const DEMO_EXAMPLE: &str = "Example:
+  kilter demo --out kilter-demo";
+
+/// Columns of a CSV file that are not features.
+#[derive(Debug, Args)]
+pub struct ColumnArgs {
+    /// A CSV column that identifies rows; dropped from the features (repeatable).
+    #[arg(long = "id-column", value_name = "NAME")]
+    pub id_columns: Vec<String>,
+    /// A CSV column that holds labels; dropped from the features (repeatable).
+    #[arg(long = "label-column", value_name = "NAME")]
+    pub label_columns: Vec<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct FitArgs {
+    /// Reference corpus: a .csv (with header) or .npy matrix, one row per input.
+    #[arg(long, value_name = "FILE")]
+    pub reference: PathBuf,
+    /// Where to write the profile.
+    #[arg(long, value_name = "PROFILE")]
+    pub out: PathBuf,
+    /// Embedding: none, standardize, or pca:R.
+    #[arg(long, default_value = "standardize", value_name = "EMBED")]
+    pub embed: String,
+    /// Covariance estimator: empirical or ledoit-wolf.
+    #[arg(long, default_value = "ledoit-wolf", value_name = "METHOD")]
+    pub covariance: String,
+    /// Neighbours for the k-NN distance and the local outlier factor.
+    #[arg(long, default_value_t = 10, value_name = "K")]
+    pub k: usize,
+    /// Fraction of rows held out for calibration; 0 calibrates in-sample.
+    #[arg(long, default_value_t = 0.2, value_name = "F")]
+    pub holdout: f64,
+    /// Seed of the holdout split.
+    #[arg(long, default_value_t = 0, value_name = "S")]
+    pub seed: u64,
+    #[command(flatten)]
+    pub columns: ColumnArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct ScoreArgs {
+    /// Profile written by `kilter fit`.
+    #[arg(long, value_name = "PROFILE")]
+    pub profile: PathBuf,
+    /// Inputs to score: .csv or .npy, the profile's columns in the profile's order.
+    #[arg(long, value_name = "FILE")]
+    pub input: PathBuf,
+    /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    /// Significance level for `off_manifold`.
+    #[arg(long, default_value_t = 0.01, value_name = "A")]
+    pub alpha: f64,
+    #[command(flatten)]
+    pub columns: ColumnArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct DemoArgs {
+    /// Directory for the demo's files (created if missing).
+    #[arg(long, default_value = "kilter-demo", value_name = "DIR")]
+    pub out: PathBuf,
+}

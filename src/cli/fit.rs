@@ -1,0 +1,94 @@
+//! `kilter fit`: reference corpus in, profile out, with a short summary.
+
+use kilter::corpus::{read_matrix, CsvOptions};
+use kilter::output::check_output_path;
+use kilter::profile::{Profile, ProfileSettings};
+use kilter::Result;
+
+use super::args::{ColumnArgs, FitArgs};
+use super::Context;
+
+pub fn run(args: FitArgs, context: &Context) -> Result<()> {
+    let settings = ProfileSettings {
+        embed: args.embed.parse()?,
+        covariance: args.covariance.parse()?,
+        k: args.k,
+        holdout: args.holdout,
+        seed: args.seed,
+    };
+    settings.validate()?;
+    check_output_path(&args.out, &[&args.reference])?;
+    let reference = read_matrix(&args.reference, &csv_options(&args.columns))?;
+    let profile = settings.fit(&reference)?;
+    profile.save(&args.out)?;
+    if !context.quiet {
+        println!("{}", summary(&profile, &args.out.display().to_string()));
+    }
+    Ok(())
+}
+
+pub fn csv_options(columns: &ColumnArgs) -> CsvOptions {
+    CsvOptions {
+        id_columns: columns.id_columns.clone(),
+        label_columns: columns.label_columns.clone(),
+    }
+}
+
+/// The lines `fit` prints: what was fitted, and the p = 0.01 thresholds.
+pub fn summary(profile: &Profile, path: &str) -> String {
+    let s = profile.settings();
+    let n_cal = profile.calibration_mahalanobis().len();
+    let calibration = if s.holdout == 0.0 {
+        format!(
+            "in-sample on the {} fitted rows (each row's own neighbour excluded)",
+            n_cal
+        )
+    } else {
+        format!(
+            "{n_cal} held-out rows (--holdout {}, --seed {})",
+            s.holdout, s.seed
+        )
+    };
+    let shrinkage = match profile.shrinkage() {
+        Some(v) => format!("ledoit-wolf, shrinkage intensity {v:.4}"),
+        None => "empirical (maximum likelihood)".to_string(),
+    };
+    let threshold = |t: Option<f64>| match t {
+        Some(v) => format!("{v:.4}"),
+        None => "unreachable".to_string(),
+    };
+    let mut lines = vec![
+        format!("profile written to {path}"),
+        format!(
+            "  reference rows   {} ({} fitted)",
+            profile.reference_rows(),
+            profile.fitted_rows()
+        ),
+        format!(
+            "  embedding        {} features -> {} dimensions ({})",
+            profile.feature_names().len(),
+            profile.embedded_dim(),
+            s.embed
+        ),
+        format!("  covariance       {shrinkage}"),
+        format!(
+            "  neighbours       k = {}, exact search ({})",
+            s.k,
+            kilter::linalg::BACKEND
+        ),
+        format!("  calibration      {calibration}"),
+        format!(
+            "  at p = 0.01      mahalanobis_d2 >= {}, knn_kth >= {}",
+            threshold(profile.calibration_mahalanobis().threshold(0.01)),
+            threshold(profile.calibration_knn().threshold(0.01))
+        ),
+    ];
+    let floor = profile.smallest_p_combined();
+    if floor >= 0.01 {
+        lines.push(format!(
+            "  note: with {n_cal} calibration rows the smallest possible p_combined is {floor:.3}, \
+             so nothing can be flagged at --alpha 0.01; use a larger reference corpus or --holdout"
+        ));
+    }
+    lines.join("\n")
+}

@@ -1,0 +1,246 @@
+//! Typed errors of the library.
+//!
+//! Every error that a user can cause carries enough context to fix it without a debugger:
+//! the file, the 1-based data row and the column for a bad cell, the flag and the value for
+//! a bad setting, the expected and found shapes for a mismatch. The binary prints the
+//! message once and maps [`Error::exit_status`] to the process exit code that SPEC fixes.
+
+use std::fmt;
+use std::path::PathBuf;
+
+/// Result alias used across the crate.
+pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+/// Where a bad cell sits: a CSV column by its header name, an `.npy` column by its
+/// 1-based position.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum ColumnRef {
+    /// A CSV column, by header name.
+    Named(String),
+    /// An `.npy` column, 1-based.
+    Position(usize),
+}
+
+impl fmt::Display for ColumnRef {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            ColumnRef::Named(name) => write!(f, "column \"{name}\""),
+            ColumnRef::Position(position) => write!(f, "column {position}"),
+        }
+    }
+}
+
+/// What is wrong with one cell of a matrix file.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum CellFault {
+    /// The cell is empty.
+    Empty,
+    /// The cell is text that does not parse as a number.
+    NotNumeric(String),
+    /// The cell is NaN or infinite.
+    NotFinite(String),
+}
+
+impl fmt::Display for CellFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            CellFault::Empty => write!(f, "the cell is empty"),
+            CellFault::NotNumeric(text) => write!(f, "\"{text}\" is not a number"),
+            CellFault::NotFinite(text) => write!(f, "{text} is not a finite number"),
+        }
+    }
+}
+
+/// What is wrong with a CSV header.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum HeaderFault {
+    /// The file has no header row at all.
+    Missing,
+    /// Two columns share a name.
+    Duplicate(String),
+    /// A column has an empty name (1-based position).
+    EmptyName(usize),
+    /// `--id-column` or `--label-column` names a column the header lacks.
+    UnknownColumn(String),
+    /// After dropping id and label columns nothing is left.
+    NoFeatures,
+}
+
+impl fmt::Display for HeaderFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            HeaderFault::Missing => write!(f, "the file is empty; a header row is required"),
+            HeaderFault::Duplicate(name) => write!(f, "the header names column \"{name}\" twice"),
+            HeaderFault::EmptyName(position) => {
+                write!(f, "column {position} of the header has an empty name")
+            }
+            HeaderFault::UnknownColumn(name) => {
+                write!(f, "there is no column \"{name}\" in the header")
+            }
+            HeaderFault::NoFeatures => write!(
+                f,
+                "no feature columns are left after dropping the id and label columns"
+            ),
+        }
+    }
+}
+
+/// What is wrong with a profile file.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum ProfileFault {
+    /// The file does not start with the profile signature.
+    NotAProfile,
+    /// Written by another format version.
+    Version { found: u32, supported: u32 },
+    /// The file ends before its declared content.
+    Truncated,
+    /// The checksum does not match: the file was changed or damaged.
+    Checksum,
+    /// The header is not valid or is inconsistent with the binary sections.
+    Inconsistent(String),
+}
+
+impl fmt::Display for ProfileFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            ProfileFault::NotAProfile => {
+                write!(
+                    f,
+                    "this is not a kilter profile (make one with `kilter fit`)"
+                )
+            }
+            ProfileFault::Version { found, supported } => write!(
+                f,
+                "the profile has format version {found}, this kilter reads version {supported}; \
+                 fit it again with this version of `kilter fit`"
+            ),
+            ProfileFault::Truncated => write!(f, "the profile is truncated"),
+            ProfileFault::Checksum => write!(
+                f,
+                "the profile's checksum does not match: the file is damaged or was edited"
+            ),
+            ProfileFault::Inconsistent(what) => write!(f, "the profile is inconsistent: {what}"),
+        }
+    }
+}
+
+/// Every error of the library.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum Error {
+    /// A file could not be opened, read or written.
+    #[error("{path}: {source}")]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+
+    /// A matrix file has an extension kilter does not read.
+    #[error("{path}: unknown file type; matrix files end in .csv or .npy")]
+    UnknownFileType { path: PathBuf },
+
+    /// The CSV reader failed (for example invalid UTF-8 in a quoted field).
+    #[error("{path}: {detail}")]
+    CsvSyntax { path: PathBuf, detail: String },
+
+    /// A CSV header is missing or unusable.
+    #[error("{path}: {fault}")]
+    Header { path: PathBuf, fault: HeaderFault },
+
+    /// A data row has a different number of cells than the header.
+    #[error("{path}: row {row} has {found} cells, the header has {expected}")]
+    RaggedRow {
+        path: PathBuf,
+        row: usize,
+        expected: usize,
+        found: usize,
+    },
+
+    /// One cell is empty, not a number, or not finite.
+    #[error("{path}: row {row}, {column}: {fault}")]
+    BadCell {
+        path: PathBuf,
+        row: usize,
+        column: ColumnRef,
+        fault: CellFault,
+    },
+
+    /// A matrix file has a header but no data rows.
+    #[error("{path}: the file has no data rows")]
+    NoRows { path: PathBuf },
+
+    /// An `.npy` file cannot be used.
+    #[error("{path}: {detail}")]
+    Npy { path: PathBuf, detail: String },
+
+    /// A command-line setting is out of range or malformed.
+    #[error("invalid value \"{value}\" for {flag}: {expected}")]
+    InvalidSetting {
+        flag: &'static str,
+        value: String,
+        expected: String,
+    },
+
+    /// A column is constant, so it cannot be standardized.
+    #[error(
+        "column \"{column}\" is constant ({value}) in the reference rows, so it cannot be \
+         standardized; drop it (for example with --id-column \"{column}\") or use --embed none"
+    )]
+    ConstantColumn { column: String, value: f64 },
+
+    /// The data has too few rows for what was asked.
+    #[error("{what}: needs at least {needed} rows, has {found}")]
+    TooFewRows {
+        what: String,
+        needed: usize,
+        found: usize,
+    },
+
+    /// The empirical covariance is singular.
+    #[error(
+        "the empirical covariance of the embedded reference rows ({dim} dimensions, {rows} rows) \
+         is singular or numerically so; use --covariance ledoit-wolf, or reduce the dimension \
+         with --embed pca:R"
+    )]
+    SingularCovariance { dim: usize, rows: usize },
+
+    /// A matrix that must be positive definite is not (an internal numerical failure).
+    #[error("{what} is not positive definite")]
+    NotPositiveDefinite { what: &'static str },
+
+    /// An eigen-decomposition did not converge.
+    #[error("the eigen-decomposition of {what} did not converge")]
+    EigenFailed { what: &'static str },
+
+    /// A profile file is unusable.
+    #[error("{path}: {fault}")]
+    Profile { path: PathBuf, fault: ProfileFault },
+
+    /// An input does not fit the profile it is scored against.
+    #[error("{path}: {detail}")]
+    InputMismatch { path: PathBuf, detail: String },
+
+    /// An output path is unusable.
+    #[error("{path}: {detail}")]
+    Output { path: PathBuf, detail: String },
+}
+
+impl Error {
+    /// The process exit status SPEC assigns to this error: 2 for bad usage or bad input,
+    /// 1 for work that failed.
+    pub fn exit_status(&self) -> u8 {
+        match self {
+            Error::NotPositiveDefinite { .. } | Error::EigenFailed { .. } => 1,
+            _ => 2,
+        }
+    }
+
+    /// Wraps an I/O error with the path it concerns.
+    pub fn io(path: impl Into<PathBuf>, source: std::io::Error) -> Self {
+        Error::Io {
+            path: path.into(),
+            source,
+        }
+    }
+}

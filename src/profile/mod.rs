@@ -1,0 +1,400 @@
+//! The reference profile: everything kilter learns from the reference corpus, and the
+//! off-manifold scores it gives any input.
+//!
+//! [`ProfileSettings::fit`] splits the corpus into fitting and calibration rows, fits the
+//! embedding, the location and covariance, the neighbour index and the local outlier
+//! factor on the fitting rows, and scores the calibration rows to calibrate p-values.
+//! A [`Profile`] is self-contained: `score`, `audit` and `baseline` need nothing else.
+
+mod format;
+
+use ndarray::{Array1, Array2, ArrayView2, Axis};
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::corpus::FeatureMatrix;
+use crate::embedding::{Embedding, EmbeddingSpec, FittedEmbedding};
+use crate::error::{Error, Result};
+use crate::neighbours::{BruteForceIndex, Exclusion, LocalOutlierFactor, NeighbourIndex};
+use crate::stats::{
+    chi_square_tail, combine_p_values, CalibrationScores, CovarianceEstimate, CovarianceMethod,
+    MahalanobisModel,
+};
+
+pub use format::{FORMAT_NAME, FORMAT_VERSION};
+
+/// The settings of `kilter fit`, validated.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct ProfileSettings {
+    /// How inputs are embedded.
+    pub embed: EmbeddingSpec,
+    /// How the covariance is estimated.
+    pub covariance: CovarianceMethod,
+    /// Neighbours for the k-NN distance and the local outlier factor.
+    pub k: usize,
+    /// Fraction of rows set aside for calibration; 0 calibrates in-sample.
+    pub holdout: f64,
+    /// Seed of the holdout split.
+    pub seed: u64,
+}
+
+impl Default for ProfileSettings {
+    fn default() -> Self {
+        ProfileSettings {
+            embed: EmbeddingSpec::Standardize,
+            covariance: CovarianceMethod::LedoitWolf,
+            k: 10,
+            holdout: 0.2,
+            seed: 0,
+        }
+    }
+}
+
+/// A fitted reference profile.
+#[derive(Debug, Clone)]
+pub struct Profile {
+    settings: ProfileSettings,
+    feature_names: Vec<String>,
+    named_features: bool,
+    reference_rows: usize,
+    embedding: FittedEmbedding,
+    estimate: CovarianceEstimate,
+    mahalanobis: MahalanobisModel,
+    index: BruteForceIndex,
+    lof: LocalOutlierFactor,
+    calibration_mahalanobis: CalibrationScores,
+    calibration_knn: CalibrationScores,
+}
+
+/// The off-manifold scores of one input row (SPEC: `kilter score`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScoreRecord {
+    /// 0-based input row.
+    pub row: usize,
+    /// Squared Mahalanobis distance from the fitted mean, embedded space.
+    pub mahalanobis_d2: f64,
+    /// Upper chi-square tail of `mahalanobis_d2`, df = embedded dimension.
+    pub chi2_p: f64,
+    /// Distance to the k-th nearest fitted row.
+    pub knn_kth: f64,
+    /// Mean distance to the k nearest fitted rows.
+    pub knn_mean: f64,
+    /// Local outlier factor against the fitted rows.
+    pub lof: f64,
+    /// Conformal p-value of `mahalanobis_d2`.
+    pub p_mahalanobis: f64,
+    /// Conformal p-value of `knn_kth`.
+    pub p_knn: f64,
+    /// `min(1, 2 min(p_mahalanobis, p_knn))`.
+    pub p_combined: f64,
+    /// `p_combined < alpha`.
+    pub off_manifold: bool,
+}
+
+/// Columns of off-manifold scores for a batch of embedded rows, before they become records.
+#[derive(Debug, Clone)]
+pub struct BatchScores {
+    pub mahalanobis_d2: Array1<f64>,
+    pub knn_kth: Array1<f64>,
+    pub knn_mean: Array1<f64>,
+    pub lof: Array1<f64>,
+    pub p_mahalanobis: Array1<f64>,
+    pub p_knn: Array1<f64>,
+    pub p_combined: Array1<f64>,
+}
+
+impl ProfileSettings {
+    /// Checks ranges that do not depend on the data.
+    pub fn validate(&self) -> Result<()> {
+        if self.k == 0 {
+            return Err(Error::InvalidSetting {
+                flag: "--k",
+                value: "0".into(),
+                expected: "a whole number of at least 1".into(),
+            });
+        }
+        if !(0.0..1.0).contains(&self.holdout) {
+            return Err(Error::InvalidSetting {
+                flag: "--holdout",
+                value: self.holdout.to_string(),
+                expected: "a fraction in [0, 1): 0 calibrates on the fitted rows themselves".into(),
+            });
+        }
+        Ok(())
+    }
+
+    /// Fits a profile to the reference corpus.
+    pub fn fit(&self, reference: &FeatureMatrix) -> Result<Profile> {
+        self.validate()?;
+        let n = reference.rows();
+        let (fit_rows, calibration_rows) = self.split(n)?;
+        let fit_values = reference.values.select(Axis(0), &fit_rows);
+
+        let embedding = self.embed.fit(fit_values.view(), &reference.names)?;
+        let embedded_fit = embedding.embed(fit_values.view());
+        let estimate = self.covariance.estimate(embedded_fit.view())?;
+        let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
+
+        let index = BruteForceIndex::new(embedded_fit);
+        let in_sample = index.k_nearest(index.rows(), self.k, Exclusion::SameIndex)?;
+        let lof = LocalOutlierFactor::fit(&in_sample);
+
+        let (calibration_mahalanobis, calibration_knn) = match calibration_rows {
+            None => (
+                mahalanobis.squared_distances(index.rows()),
+                in_sample.distances.column(self.k - 1).to_owned(),
+            ),
+            Some(rows) => {
+                let held_out = embedding.embed(reference.values.select(Axis(0), &rows).view());
+                let nn = index.k_nearest(held_out.view(), self.k, Exclusion::None)?;
+                (
+                    mahalanobis.squared_distances(held_out.view()),
+                    nn.distances.column(self.k - 1).to_owned(),
+                )
+            }
+        };
+
+        Ok(Profile {
+            settings: *self,
+            feature_names: reference.names.clone(),
+            named_features: reference.named,
+            reference_rows: n,
+            embedding,
+            estimate,
+            mahalanobis,
+            index,
+            lof,
+            calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis.to_vec()),
+            calibration_knn: CalibrationScores::new(calibration_knn.to_vec()),
+        })
+    }
+
+    /// Seeded split into fitting rows and (for `holdout > 0`) calibration rows, each in
+    /// ascending order so that the result does not depend on the shuffle beyond membership.
+    fn split(&self, n: usize) -> Result<(Vec<usize>, Option<Vec<usize>>)> {
+        let needed = self.k + 1;
+        if self.holdout == 0.0 {
+            if n < needed.max(2) {
+                return Err(Error::TooFewRows {
+                    what: format!("fitting with --k {} and --holdout 0", self.k),
+                    needed: needed.max(2),
+                    found: n,
+                });
+            }
+            return Ok(((0..n).collect(), None));
+        }
+        let n_cal = ((n as f64) * self.holdout).round() as usize;
+        let n_fit = n.saturating_sub(n_cal);
+        if n_cal == 0 || n_fit < needed.max(2) {
+            return Err(Error::TooFewRows {
+                what: format!(
+                    "fitting with --k {} and --holdout {} (at least one calibration row and {} fitting rows)",
+                    self.k,
+                    self.holdout,
+                    needed.max(2)
+                ),
+                needed: needed.max(2) + 1,
+                found: n,
+            });
+        }
+        let mut order: Vec<usize> = (0..n).collect();
+        order.shuffle(&mut ChaCha8Rng::seed_from_u64(self.seed));
+        let mut calibration = order[..n_cal].to_vec();
+        let mut fit = order[n_cal..].to_vec();
+        calibration.sort_unstable();
+        fit.sort_unstable();
+        Ok((fit, Some(calibration)))
+    }
+}
+
+impl Profile {
+    /// The settings it was fitted with.
+    pub fn settings(&self) -> &ProfileSettings {
+        &self.settings
+    }
+
+    /// Feature names of the reference corpus.
+    pub fn feature_names(&self) -> &[String] {
+        &self.feature_names
+    }
+
+    /// Whether the feature names came from a CSV header.
+    pub fn named_features(&self) -> bool {
+        self.named_features
+    }
+
+    /// Rows of the reference corpus (fitting plus calibration).
+    pub fn reference_rows(&self) -> usize {
+        self.reference_rows
+    }
+
+    /// Rows the statistics and the index were fitted on.
+    pub fn fitted_rows(&self) -> usize {
+        self.index.len()
+    }
+
+    /// The fitted embedding.
+    pub fn embedding(&self) -> &FittedEmbedding {
+        &self.embedding
+    }
+
+    /// Embedded dimension (the chi-square degrees of freedom).
+    pub fn embedded_dim(&self) -> usize {
+        self.embedding.output_dim()
+    }
+
+    /// Location and covariance in the embedded space.
+    pub fn estimate(&self) -> &CovarianceEstimate {
+        &self.estimate
+    }
+
+    /// The Ledoit-Wolf shrinkage intensity, if that estimator was used.
+    pub fn shrinkage(&self) -> Option<f64> {
+        self.estimate.shrinkage
+    }
+
+    /// The neighbour index over the embedded fitted rows.
+    pub fn index(&self) -> &BruteForceIndex {
+        &self.index
+    }
+
+    /// Calibration scores of the squared Mahalanobis distance.
+    pub fn calibration_mahalanobis(&self) -> &CalibrationScores {
+        &self.calibration_mahalanobis
+    }
+
+    /// Calibration scores of the k-th neighbour distance.
+    pub fn calibration_knn(&self) -> &CalibrationScores {
+        &self.calibration_knn
+    }
+
+    /// The smallest `p_combined` any input can get: 2 / (1 + calibration rows).
+    pub fn smallest_p_combined(&self) -> f64 {
+        combine_p_values(
+            self.calibration_mahalanobis.p_value(f64::INFINITY),
+            self.calibration_knn.p_value(f64::INFINITY),
+        )
+    }
+
+    /// Checks that an input has the profile's columns: the same count and, when both
+    /// sides have header names, the same names in the same order.
+    pub fn check_input(&self, input: &FeatureMatrix) -> Result<()> {
+        let expected = self.feature_names.len();
+        if input.columns() != expected {
+            return Err(Error::InputMismatch {
+                path: input.source.clone(),
+                detail: format!(
+                    "has {} feature columns, the profile was fitted on {expected}{}",
+                    input.columns(),
+                    if self.named_features {
+                        format!(" ({})", abbreviate(&self.feature_names))
+                    } else {
+                        String::new()
+                    }
+                ),
+            });
+        }
+        if self.named_features && input.named {
+            if let Some(c) = (0..expected).find(|&c| input.names[c] != self.feature_names[c]) {
+                return Err(Error::InputMismatch {
+                    path: input.source.clone(),
+                    detail: format!(
+                        "feature column {} is \"{}\", the profile expects \"{}\" there \
+                         (columns must come in the profile's order)",
+                        c + 1,
+                        input.names[c],
+                        self.feature_names[c]
+                    ),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Embeds raw input rows.
+    pub fn embed(&self, rows: ArrayView2<'_, f64>) -> Array2<f64> {
+        self.embedding.embed(rows)
+    }
+
+    /// Off-manifold scores of already embedded rows, as columns.
+    pub fn score_embedded(&self, embedded: ArrayView2<'_, f64>) -> Result<BatchScores> {
+        let d2 = self.mahalanobis.squared_distances(embedded);
+        let nn = self
+            .index
+            .k_nearest(embedded, self.settings.k, Exclusion::None)?;
+        let k = self.settings.k;
+        let knn_kth = nn.distances.column(k - 1).to_owned();
+        let knn_mean = nn.distances.mean_axis(Axis(1)).expect("k >= 1");
+        let lof = self.lof.score(&nn);
+        let p_mahalanobis = d2.mapv(|s| self.calibration_mahalanobis.p_value(s));
+        let p_knn = knn_kth.mapv(|s| self.calibration_knn.p_value(s));
+        let p_combined = ndarray::Zip::from(&p_mahalanobis)
+            .and(&p_knn)
+            .map_collect(|&a, &b| combine_p_values(a, b));
+        Ok(BatchScores {
+            mahalanobis_d2: d2,
+            knn_kth,
+            knn_mean,
+            lof,
+            p_mahalanobis,
+            p_knn,
+            p_combined,
+        })
+    }
+
+    /// Scores raw input rows; `first_row` numbers the records.
+    pub fn score(
+        &self,
+        rows: ArrayView2<'_, f64>,
+        first_row: usize,
+        alpha: f64,
+    ) -> Result<Vec<ScoreRecord>> {
+        let embedded = self.embed(rows);
+        let s = self.score_embedded(embedded.view())?;
+        let df = self.embedded_dim();
+        Ok((0..rows.nrows())
+            .map(|i| ScoreRecord {
+                row: first_row + i,
+                mahalanobis_d2: s.mahalanobis_d2[i],
+                chi2_p: chi_square_tail(s.mahalanobis_d2[i], df),
+                knn_kth: s.knn_kth[i],
+                knn_mean: s.knn_mean[i],
+                lof: s.lof[i],
+                p_mahalanobis: s.p_mahalanobis[i],
+                p_knn: s.p_knn[i],
+                p_combined: s.p_combined[i],
+                off_manifold: s.p_combined[i] < alpha,
+            })
+            .collect())
+    }
+}
+
+fn abbreviate(names: &[String]) -> String {
+    const SHOWN: usize = 6;
+    let mut text = names
+        .iter()
+        .take(SHOWN)
+        .map(String::as_str)
+        .collect::<Vec<_>>()
+        .join(", ");
+    if names.len() > SHOWN {
+        text.push_str(&format!(", ... {} more", names.len() - SHOWN));
+    }
+    text
+}
+
+/// Checks `--alpha`.
+pub fn validate_alpha(alpha: f64) -> Result<()> {
+    if alpha > 0.0 && alpha < 1.0 {
+        Ok(())
+    } else {
+        Err(Error::InvalidSetting {
+            flag: "--alpha",
+            value: alpha.to_string(),
+            expected: "a significance level strictly between 0 and 1, such as 0.01".into(),
+        })
+    }
+}
