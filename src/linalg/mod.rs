@@ -25,6 +25,12 @@ use pure as backend;
 /// The name of the backend compiled in, for summaries and records.
 pub const BACKEND: &str = backend::NAME;
 
+/// Smallest ratio of the smallest to the largest Cholesky pivot accepted. Pivots scale as
+/// the square roots of eigenvalues, so this refuses condition numbers beyond about 1e14,
+/// where double-precision solves keep fewer than two correct digits; an exactly singular
+/// matrix factors with a pivot ratio near √ε ≈ 1.5e-8 and is refused.
+const MIN_PIVOT_RATIO: f64 = 1e-7;
+
 /// Rows per parallel block of a batched triangular solve.
 const SOLVE_BLOCK_ROWS: usize = 2048;
 
@@ -37,7 +43,7 @@ pub fn cholesky_lower(a: &Array2<f64>) -> Option<Array2<f64>> {
     let diag = l.diag();
     let max = diag.iter().cloned().fold(0.0_f64, f64::max);
     let min = diag.iter().cloned().fold(f64::INFINITY, f64::min);
-    if !(min > 0.0) || !min.is_finite() || min < max * 1e-10 {
+    if !(min > 0.0) || !min.is_finite() || min < max * MIN_PIVOT_RATIO {
         return None;
     }
     Some(l)

@@ -1,0 +1,277 @@
+//! Matrix input through the binary: accepted forms, and bad files refused with the file,
+//! row and column named, exit status 2, and no output created.
+
+use std::path::Path;
+
+use crate::harness::{kilter, listing, temp_dir, write_npy, Run};
+
+/// A small table with enough rows for k = 3 and in-sample calibration.
+const GOOD: &str = "a,b,c\n1,2,3.5\n2,1,0.5\n3,5,1.5\n4,4,2.0\n5,7,3.0\n6,3,2.5\n";
+
+fn fit(dir: &Path, file: &str, extra: &[&str]) -> Run {
+    let mut args = vec!["fit", "--reference", file, "--out", "p.kprofile"];
+    for (flag, default) in [("--k", "3"), ("--holdout", "0")] {
+        if !extra.contains(&flag) {
+            args.extend([flag, default]);
+        }
+    }
+    args.extend_from_slice(extra);
+    kilter(dir, &args)
+}
+
+/// Runs `fit` on `content` and expects it refused with every fragment in the message.
+fn refused(content: &[u8], extra: &[&str], fragments: &[&str]) {
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("in.csv"), content).unwrap();
+    fit(dir.path(), "in.csv", extra)
+        .expect_status(2)
+        .expect_stderr(fragments);
+    assert_eq!(
+        listing(dir.path()),
+        vec!["in.csv"],
+        "nothing may be written"
+    );
+}
+
+#[test]
+fn bom_crlf_and_quotes_are_accepted() {
+    let dir = temp_dir();
+    let plain = GOOD.to_string();
+    let fancy = format!(
+        "\u{feff}{}",
+        GOOD.replace('\n', "\r\n")
+            .replacen("a,b,c", "\"a\",b,\"c\"", 1)
+    )
+    .replace("1,2,3.5", "\"1\",2,\" 3.5\"");
+    std::fs::write(dir.path().join("plain.csv"), plain).unwrap();
+    std::fs::write(dir.path().join("fancy.csv"), fancy).unwrap();
+    fit(dir.path(), "plain.csv", &[]).expect_status(0);
+    std::fs::rename(
+        dir.path().join("p.kprofile"),
+        dir.path().join("plain.kprofile"),
+    )
+    .unwrap();
+    fit(dir.path(), "fancy.csv", &[]).expect_status(0);
+    // Same numbers and names: the profiles score the same input identically.
+    for profile in ["plain.kprofile", "p.kprofile"] {
+        let run = kilter(
+            dir.path(),
+            &["score", "--profile", profile, "--input", "plain.csv"],
+        );
+        run.expect_status(0);
+    }
+    let a = kilter(
+        dir.path(),
+        &[
+            "score",
+            "--profile",
+            "plain.kprofile",
+            "--input",
+            "fancy.csv",
+        ],
+    );
+    let b = kilter(
+        dir.path(),
+        &["score", "--profile", "p.kprofile", "--input", "plain.csv"],
+    );
+    assert_eq!(a.expect_status(0).stdout, b.expect_status(0).stdout);
+}
+
+#[test]
+fn id_and_label_columns_are_dropped() {
+    let dir = temp_dir();
+    let with_extra = "id,a,b,c,label\n".to_string()
+        + &GOOD
+            .lines()
+            .skip(1)
+            .enumerate()
+            .map(|(i, l)| format!("r{i},{l},{}\n", i % 2))
+            .collect::<String>();
+    std::fs::write(dir.path().join("x.csv"), with_extra).unwrap();
+    fit(
+        dir.path(),
+        "x.csv",
+        &["--id-column", "id", "--label-column", "label"],
+    )
+    .expect_status(0)
+    .stdout
+    .contains("3 features");
+    fit(dir.path(), "x.csv", &["--id-column", "missing"])
+        .expect_status(2)
+        .expect_stderr(&["no column \"missing\""]);
+    // Without dropping them the id column is text: refused at its first cell.
+    fit(dir.path(), "x.csv", &[])
+        .expect_status(2)
+        .expect_stderr(&["row 1", "column \"id\"", "\"r0\" is not a number"]);
+}
+
+#[test]
+fn bad_cells_name_file_row_and_column() {
+    let bad = GOOD.replace("3,5,1.5", "3,five,1.5");
+    refused(
+        bad.as_bytes(),
+        &[],
+        &[
+            "in.csv",
+            "row 3",
+            "column \"b\"",
+            "\"five\" is not a number",
+        ],
+    );
+    let nan = GOOD.replace("4,4,2.0", "4,4,NaN");
+    refused(
+        nan.as_bytes(),
+        &[],
+        &["row 4", "column \"c\"", "not a finite number"],
+    );
+    let inf = GOOD.replace("5,7,3.0", "5,-inf,3.0");
+    refused(
+        inf.as_bytes(),
+        &[],
+        &["row 5", "column \"b\"", "not a finite number"],
+    );
+    let empty = GOOD.replace("2,1,0.5", "2,,0.5");
+    refused(empty.as_bytes(), &[], &["row 2", "column \"b\"", "empty"]);
+}
+
+#[test]
+fn malformed_tables_are_refused() {
+    refused(b"", &[], &["header row is required"]);
+    refused(b"a,b,c\n", &[], &["no data rows"]);
+    refused(b"a,b,a\n1,2,3\n", &[], &["column \"a\" twice"]);
+    refused(b"a,,c\n1,2,3\n", &[], &["column 2", "empty name"]);
+    let ragged = GOOD.replace("3,5,1.5", "3,5");
+    refused(
+        ragged.as_bytes(),
+        &[],
+        &["row 3 has 2 cells, the header has 3"],
+    );
+}
+
+#[test]
+fn numpy_files_of_both_widths_and_versions_load_alike() {
+    let dir = temp_dir();
+    let rows: Vec<[f64; 3]> = GOOD
+        .lines()
+        .skip(1)
+        .map(|l| {
+            let v: Vec<f64> = l.split(',').map(|c| c.parse().unwrap()).collect();
+            [v[0], v[1], v[2]]
+        })
+        .collect();
+    let f8: Vec<u8> = rows
+        .iter()
+        .flatten()
+        .flat_map(|v| v.to_le_bytes())
+        .collect();
+    let f4: Vec<u8> = rows
+        .iter()
+        .flatten()
+        .flat_map(|v| (*v as f32).to_le_bytes())
+        .collect();
+    write_npy(&dir.path().join("v1.npy"), 1, "<f8", &[6, 3], &f8);
+    write_npy(&dir.path().join("v2.npy"), 2, "<f4", &[6, 3], &f4);
+    std::fs::write(dir.path().join("t.csv"), GOOD).unwrap();
+    fit(dir.path(), "t.csv", &[]).expect_status(0);
+    let csv = kilter(
+        dir.path(),
+        &["score", "--profile", "p.kprofile", "--input", "t.csv"],
+    );
+    let v1 = kilter(
+        dir.path(),
+        &["score", "--profile", "p.kprofile", "--input", "v1.npy"],
+    );
+    let v2 = kilter(
+        dir.path(),
+        &["score", "--profile", "p.kprofile", "--input", "v2.npy"],
+    );
+    // The table's values are exact in float32, so all three inputs are the same numbers.
+    assert_eq!(csv.expect_status(0).stdout, v1.expect_status(0).stdout);
+    assert_eq!(csv.stdout, v2.expect_status(0).stdout);
+}
+
+#[test]
+fn bad_numpy_files_are_refused() {
+    let dir = temp_dir();
+    let one_nan: Vec<u8> = [1.0, 2.0, f64::NAN, 4.0]
+        .iter()
+        .flat_map(|v: &f64| v.to_le_bytes())
+        .collect();
+    write_npy(&dir.path().join("nan.npy"), 1, "<f8", &[2, 2], &one_nan);
+    fit(dir.path(), "nan.npy", &[])
+        .expect_status(2)
+        .expect_stderr(&["nan.npy", "row 2", "column 1", "not a finite number"]);
+    write_npy(&dir.path().join("int.npy"), 1, "<i8", &[2, 2], &[0u8; 32]);
+    fit(dir.path(), "int.npy", &[])
+        .expect_status(2)
+        .expect_stderr(&["dtype", "<f4", "<f8"]);
+    write_npy(
+        &dir.path().join("cube.npy"),
+        1,
+        "<f8",
+        &[2, 2, 1],
+        &[0u8; 32],
+    );
+    fit(dir.path(), "cube.npy", &[])
+        .expect_status(2)
+        .expect_stderr(&["3 dimensions"]);
+    write_npy(&dir.path().join("short.npy"), 1, "<f8", &[4, 2], &[0u8; 32]);
+    fit(dir.path(), "short.npy", &[])
+        .expect_status(2)
+        .expect_stderr(&["short.npy"]);
+    std::fs::write(dir.path().join("text.npy"), "a,b\n1,2\n").unwrap();
+    fit(dir.path(), "text.npy", &[])
+        .expect_status(2)
+        .expect_stderr(&["not a NumPy .npy file"]);
+    assert!(!dir.path().join("p.kprofile").exists());
+}
+
+#[test]
+fn settings_and_data_that_cannot_work_are_explained() {
+    // A constant column cannot be standardized; the message names it.
+    let constant = "a,b\n1,5\n2,5\n3,5\n4,5\n5,5\n";
+    refused(constant.as_bytes(), &[], &["column \"b\" is constant"]);
+    // Perfectly collinear columns: the empirical covariance is singular.
+    let collinear = "a,b\n1,2\n2,4\n3,6\n4,8\n5,10\n6,12\n";
+    refused(
+        collinear.as_bytes(),
+        &["--covariance", "empirical", "--embed", "none"],
+        &["singular", "--covariance ledoit-wolf"],
+    );
+    refused(GOOD.as_bytes(), &["--k", "6"], &["--k"]);
+    refused(
+        GOOD.as_bytes(),
+        &["--holdout", "1.5"],
+        &["--holdout", "[0, 1)"],
+    );
+    refused(
+        GOOD.as_bytes(),
+        &["--embed", "pca:9"],
+        &["at most 3 components"],
+    );
+    refused(GOOD.as_bytes(), &["--embed", "whiten"], &["--embed"]);
+    refused(
+        GOOD.as_bytes(),
+        &["--covariance", "shrunk"],
+        &["--covariance"],
+    );
+    let dir = temp_dir();
+    fit(dir.path(), "missing.csv", &[])
+        .expect_status(2)
+        .expect_stderr(&["missing.csv"]);
+    std::fs::write(dir.path().join("t.txt"), GOOD).unwrap();
+    fit(dir.path(), "t.txt", &[])
+        .expect_status(2)
+        .expect_stderr(&[".csv or .npy"]);
+}
+
+#[test]
+fn wrong_flags_are_usage_errors() {
+    let dir = temp_dir();
+    let run = kilter(dir.path(), &["fit", "--refrence", "x.csv"]);
+    run.expect_status(2);
+    assert!(run.stderr.contains("--reference"), "{}", run.stderr);
+    kilter(dir.path(), &["score"]).expect_status(2);
+    kilter(dir.path(), &["no-such-command"]).expect_status(2);
+    kilter(dir.path(), &["fit", "--help"]).expect_status(0);
+}

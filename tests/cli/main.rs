@@ -1,0 +1,12 @@
+//! Integration tests: one binary, one module per concern. Each test runs the real
+//! `kilter` binary (or the library, where that is the thing under test) in a temporary
+//! directory; JSON output is read back into typed records with unknown fields denied.
+
+mod harness;
+mod tolerance;
+
+mod calibration;
+mod golden;
+mod inputs;
+mod profiles;
+mod records;
