@@ -145,7 +145,7 @@ fn standardization(
         let var = column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n;
         let sd = var.sqrt();
         // Relative test: a column whose spread is round-off of its level is constant.
-        if !(sd > 1e-12 * m.abs().max(f64::MIN_POSITIVE)) {
+        if sd.is_nan() || sd <= 1e-12 * m.abs().max(f64::MIN_POSITIVE) {
             return Err(Error::ConstantColumn {
                 column: names.get(c).cloned().unwrap_or_else(|| (c + 1).to_string()),
                 value: column[0],
@@ -225,7 +225,7 @@ fn check_scaling(mean: &[f64], scale: &[f64]) -> std::result::Result<(), String>
     if mean.is_empty() || mean.len() != scale.len() {
         return Err("standardization vectors have mismatched lengths".into());
     }
-    if scale.iter().any(|s| !(*s > 0.0) || !s.is_finite()) {
+    if scale.iter().any(|s| !s.is_finite() || *s <= 0.0) {
         return Err("a standardization scale is not positive".into());
     }
     Ok(())

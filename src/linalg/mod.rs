@@ -43,7 +43,7 @@ pub fn cholesky_lower(a: &Array2<f64>) -> Option<Array2<f64>> {
     let diag = l.diag();
     let max = diag.iter().cloned().fold(0.0_f64, f64::max);
     let min = diag.iter().cloned().fold(f64::INFINITY, f64::min);
-    if !(min > 0.0) || !min.is_finite() || min < max * MIN_PIVOT_RATIO {
+    if !min.is_finite() || min <= 0.0 || min < max * MIN_PIVOT_RATIO {
         return None;
     }
     Some(l)

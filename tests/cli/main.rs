@@ -8,5 +8,6 @@ mod tolerance;
 mod calibration;
 mod golden;
 mod inputs;
+mod neighbours;
 mod profiles;
 mod records;
