@@ -221,6 +221,56 @@ pub enum Error {
     #[error("{path}: {detail}")]
     InputMismatch { path: PathBuf, detail: String },
 
+    /// A model file cannot be used (bad JSON, wrong shapes, not ONNX, unsupported type).
+    #[error("{path}: {detail}")]
+    ModelFile { path: PathBuf, detail: String },
+
+    /// An ONNX model uses an operator the in-process runtime does not implement.
+    #[error(
+        "{path}: the ONNX operator {operator} is not supported by kilter's in-process runtime; \
+         {advice}"
+    )]
+    OnnxOperator {
+        path: PathBuf,
+        operator: String,
+        advice: String,
+    },
+
+    /// A model's input width differs from the data's.
+    #[error("the model {model} takes {expected} features, the data has {found}")]
+    ModelInputWidth {
+        model: String,
+        expected: usize,
+        found: usize,
+    },
+
+    /// The model answered, but not with what was asked.
+    #[error("the model {model} answered wrongly: {detail}")]
+    ModelAnswer { model: String, detail: String },
+
+    /// The model reported an error of its own (`{"error": ...}`).
+    #[error("the model {model} reported an error: {message}")]
+    ModelReported { model: String, message: String },
+
+    /// The model process failed: it could not start, crashed or closed its output.
+    #[error("the model {model} failed: {detail}{}", stderr_section(stderr_tail))]
+    ModelFailed {
+        model: String,
+        detail: String,
+        stderr_tail: String,
+    },
+
+    /// The model took longer than `--model-timeout` to answer.
+    #[error(
+        "the model {model} did not answer within {seconds} s (--model-timeout); it was stopped{}",
+        stderr_section(stderr_tail)
+    )]
+    ModelTimeout {
+        model: String,
+        seconds: f64,
+        stderr_tail: String,
+    },
+
     /// An output path is unusable.
     #[error("{path}: {detail}")]
     Output { path: PathBuf, detail: String },
@@ -231,7 +281,12 @@ impl Error {
     /// 1 for work that failed.
     pub fn exit_status(&self) -> u8 {
         match self {
-            Error::NotPositiveDefinite { .. } | Error::EigenFailed { .. } => 1,
+            Error::NotPositiveDefinite { .. }
+            | Error::EigenFailed { .. }
+            | Error::ModelAnswer { .. }
+            | Error::ModelReported { .. }
+            | Error::ModelFailed { .. }
+            | Error::ModelTimeout { .. } => 1,
             _ => 2,
         }
     }
@@ -242,5 +297,15 @@ impl Error {
             path: path.into(),
             source,
         }
+    }
+}
+
+fn stderr_section(tail: &str) -> String {
+    let tail = tail.trim_end();
+    if tail.is_empty() {
+        String::new()
+    } else {
+        let indented: Vec<String> = tail.lines().map(|l| format!("    {l}")).collect();
+        format!("\n  last lines of its stderr:\n{}", indented.join("\n"))
     }
 }

@@ -22,6 +22,7 @@ pub mod corpus;
 pub mod embedding;
 pub mod error;
 pub mod linalg;
+pub mod models;
 pub mod neighbours;
 pub mod output;
 pub mod profile;

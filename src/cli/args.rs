@@ -25,6 +25,9 @@ pub enum Command {
     /// Score inputs against a profile: distance from the data and calibrated p-values.
     #[command(after_help = SCORE_EXAMPLE)]
     Score(ScoreArgs),
+    /// Run a model on inputs and print its outputs (check that it loads and answers).
+    #[command(after_help = PREDICT_EXAMPLE)]
+    Predict(PredictArgs),
     /// Run the whole job on kilter's invented example scenario.
     #[command(after_help = DEMO_EXAMPLE)]
     Demo(DemoArgs),
@@ -34,6 +37,9 @@ const FIT_EXAMPLE: &str = "Example:
   kilter fit --reference reference-corpora/wine.csv --label-column cultivar --out wine.kprofile";
 const SCORE_EXAMPLE: &str = "Example:
   kilter score --profile wine.kprofile --input new_batch.csv --label-column cultivar --out scores.jsonl";
+const PREDICT_EXAMPLE: &str = "Examples:
+  kilter predict --model model.onnx --input rows.csv --label-column label
+  kilter predict --model-cmd \"python3 examples/pipe_risk_model.py\" --input kilter-demo/segments.csv --id-column segment_id";
 const DEMO_EXAMPLE: &str = "Example:
   kilter demo --out kilter-demo";
 
@@ -89,6 +95,45 @@ pub struct ScoreArgs {
     /// Significance level for `off_manifold`.
     #[arg(long, default_value_t = 0.01, value_name = "A")]
     pub alpha: f64,
+    #[command(flatten)]
+    pub columns: ColumnArgs,
+}
+
+/// Which model to run: exactly one of `--model` or `--model-cmd`.
+#[derive(Debug, Args)]
+pub struct ModelArgs {
+    /// Model file: .onnx (run in-process) or .json (kilter's own network format).
+    #[arg(
+        long,
+        value_name = "FILE",
+        conflicts_with = "model_cmd",
+        required_unless_present = "model_cmd"
+    )]
+    pub model: Option<PathBuf>,
+    /// A command (run through sh -c) that speaks kilter's line protocol.
+    #[arg(long = "model-cmd", value_name = "CMD")]
+    pub model_cmd: Option<String>,
+    /// ONNX output to use instead of the first floating-point one.
+    #[arg(long = "model-output", value_name = "NAME")]
+    pub model_output: Option<String>,
+    /// Rows per request to a --model-cmd process.
+    #[arg(long = "batch-size", default_value_t = 256, value_name = "N")]
+    pub batch_size: usize,
+    /// Seconds a --model-cmd process may take to answer one request.
+    #[arg(long = "model-timeout", default_value_t = 60.0, value_name = "SECONDS")]
+    pub model_timeout: f64,
+}
+
+#[derive(Debug, Args)]
+pub struct PredictArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// Inputs: .csv or .npy, one row per input.
+    #[arg(long, value_name = "FILE")]
+    pub input: PathBuf,
+    /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }

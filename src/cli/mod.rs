@@ -6,14 +6,17 @@
 mod args;
 mod demo;
 mod fit;
+mod predict;
 mod score;
 
 use std::io::{self, IsTerminal, Write};
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use clap::Parser;
 
-use kilter::Error;
+use kilter::output::{check_output_path, write_atomically, RecordFormat, RecordWriter};
+use kilter::{Error, Result};
 
 /// Runs the command line and returns the process exit status.
 pub fn main() -> ExitCode {
@@ -25,6 +28,7 @@ pub fn main() -> ExitCode {
     let outcome = match cli.command {
         args::Command::Fit(a) => fit::run(a, &context),
         args::Command::Score(a) => score::run(a, &context),
+        args::Command::Predict(a) => predict::run(a, &context),
         args::Command::Demo(a) => demo::run(a, &context),
     };
     match outcome {
@@ -44,6 +48,74 @@ pub fn main() -> ExitCode {
             ExitCode::from(error.exit_status())
         }
     }
+}
+
+/// Where records go: JSON Lines on stdout, or a `.jsonl`/`.csv` file written atomically.
+pub struct RecordDestination {
+    path: Option<PathBuf>,
+    format: RecordFormat,
+}
+
+impl RecordDestination {
+    /// Checks `--out` against the inputs before any work.
+    pub fn new(out: Option<&Path>, inputs: &[&Path]) -> Result<Self> {
+        match out {
+            None => Ok(RecordDestination {
+                path: None,
+                format: RecordFormat::JsonLines,
+            }),
+            Some(path) => {
+                check_output_path(path, inputs)?;
+                Ok(RecordDestination {
+                    path: Some(path.to_path_buf()),
+                    format: RecordFormat::for_path(path)?,
+                })
+            }
+        }
+    }
+
+    /// Runs `produce`, which writes records as it goes. A file appears only if `produce`
+    /// succeeds; on stdout, records already written stay written.
+    pub fn write(
+        &self,
+        produce: impl FnOnce(&mut RecordWriter<&mut dyn Write>) -> Result<()>,
+    ) -> Result<()> {
+        match &self.path {
+            None => {
+                let stdout = io::stdout();
+                let mut lock = io::BufWriter::new(stdout.lock());
+                let mut sink: &mut dyn Write = &mut lock;
+                let mut writer = RecordWriter::new(&mut sink as &mut dyn Write, self.format);
+                produce(&mut writer)?;
+                writer.finish().map_err(|e| Error::io("<stdout>", e))?;
+                Ok(())
+            }
+            Some(path) => {
+                let mut failure = None;
+                let format = self.format;
+                let written = write_atomically(path, |file| {
+                    let mut sink: &mut dyn Write = file;
+                    let mut writer = RecordWriter::new(&mut sink as &mut dyn Write, format);
+                    match produce(&mut writer) {
+                        Ok(()) => writer.finish().map(|_| ()),
+                        Err(e) => {
+                            failure = Some(e);
+                            Err(io::Error::other("the work failed"))
+                        }
+                    }
+                });
+                match (written, failure) {
+                    (_, Some(e)) => Err(e),
+                    (result, None) => result,
+                }
+            }
+        }
+    }
+}
+
+/// Converts a record-writing failure into an error naming the destination.
+pub fn record_io(error: io::Error) -> Error {
+    Error::io("<records>", error)
 }
 
 /// What every command needs to know about how it was run.

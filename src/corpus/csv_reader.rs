@@ -25,15 +25,44 @@ pub struct CsvOptions {
 /// Rows parsed per parallel batch: large enough to amortise the hand-off, small enough
 /// that the raw records of one batch stay in cache-sized memory.
 const BATCH_ROWS: usize = 16_384;
+/// Bytes per parallel task of the unquoted fast path.
+const FAST_CHUNK_BYTES: usize = 4 << 20;
 
 pub(super) fn read_csv(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
-    let file = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(&bytes);
+    // Without a quote character anywhere, every line is a record and every comma a
+    // separator, so the file can be cut at line ends and parsed in parallel throughout.
+    // Quoted files go through the full CSV reader.
+    let (names, features, rows, values) = if memchr::memchr(b'"', bytes).is_none() {
+        read_unquoted(path, bytes, options)?
+    } else {
+        read_quoted(path, bytes, options)?
+    };
+    if rows == 0 {
+        return Err(Error::NoRows {
+            path: path.to_path_buf(),
+        });
+    }
+    let feature_names: Vec<String> = features.iter().map(|&c| names[c].clone()).collect();
+    let values = Array2::from_shape_vec((rows, features.len()), values)
+        .expect("row-major buffer has rows x features values");
+    Ok(FeatureMatrix {
+        names: feature_names,
+        named: true,
+        values,
+        source: path.to_path_buf(),
+    })
+}
+
+/// Header names, feature column indices, row count and row-major values.
+type Parsed = (Vec<String>, Vec<usize>, usize, Vec<f64>);
+
+fn read_quoted(path: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Parsed> {
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(false)
         .flexible(true)
-        .buffer_capacity(1 << 20)
-        .from_reader(std::io::BufReader::with_capacity(1 << 20, file));
-
+        .from_reader(bytes);
     let mut header = ByteRecord::new();
     let has_header = reader
         .read_byte_record(&mut header)
@@ -41,9 +70,8 @@ pub(super) fn read_csv(path: &Path, options: &CsvOptions) -> Result<FeatureMatri
     if !has_header {
         return Err(header_error(path, HeaderFault::Missing));
     }
-    let names = header_names(path, &header)?;
+    let names = header_names(path, header.iter())?;
     let features = select_features(path, &names, options)?;
-    let feature_names: Vec<String> = features.iter().map(|&c| names[c].clone()).collect();
     let width = names.len();
 
     let mut values: Vec<f64> = Vec::new();
@@ -62,40 +90,150 @@ pub(super) fn read_csv(path: &Path, options: &CsvOptions) -> Result<FeatureMatri
         if batch.is_empty() {
             break;
         }
-        let parsed: Vec<Vec<f64>> = batch
+        // Parsed in parallel, errors reported in file order.
+        let parsed: Vec<Result<Vec<f64>>> = batch
             .par_iter()
             .enumerate()
             .map(|(i, record)| {
-                parse_record(path, record, rows_done + i + 1, width, &features, &names)
+                parse_cells(
+                    path,
+                    record.iter(),
+                    rows_done + i + 1,
+                    width,
+                    &features,
+                    &names,
+                )
             })
-            .collect::<Result<_>>()?;
+            .collect();
         values.reserve(parsed.len() * features.len());
         for row in parsed {
-            values.extend_from_slice(&row);
+            values.extend_from_slice(&row?);
         }
         rows_done += batch.len();
         if batch.len() < BATCH_ROWS {
             break;
         }
     }
-    if rows_done == 0 {
-        return Err(Error::NoRows {
-            path: path.to_path_buf(),
-        });
-    }
-    let values = Array2::from_shape_vec((rows_done, features.len()), values)
-        .expect("row-major buffer has rows x features values");
-    Ok(FeatureMatrix {
-        names: feature_names,
-        named: true,
-        values,
-        source: path.to_path_buf(),
-    })
+    Ok((names, features, rows_done, values))
 }
 
-fn header_names(path: &Path, header: &ByteRecord) -> Result<Vec<String>> {
-    let mut names = Vec::with_capacity(header.len());
-    for (i, raw) in header.iter().enumerate() {
+fn read_unquoted(path: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Parsed> {
+    let header_end = memchr::memchr(b'\n', bytes).unwrap_or(bytes.len());
+    let header_line = trim_cr(&bytes[..header_end]);
+    if header_line.is_empty() && header_end >= bytes.len() {
+        return Err(header_error(path, HeaderFault::Missing));
+    }
+    let names = header_names(path, header_line.split(|&b| b == b','))?;
+    let features = select_features(path, &names, options)?;
+    let width = names.len();
+    let body = &bytes[(header_end + 1).min(bytes.len())..];
+
+    // Cut the body into chunks that end at line ends.
+    let mut chunks = Vec::new();
+    let mut start = 0;
+    while start < body.len() {
+        let mut end = (start + FAST_CHUNK_BYTES).min(body.len());
+        if end < body.len() {
+            end = match memchr::memchr(b'\n', &body[end..]) {
+                Some(offset) => end + offset + 1,
+                None => body.len(),
+            };
+        }
+        chunks.push(&body[start..end]);
+        start = end;
+    }
+    // Each chunk: its rows' values, its row count, and its first bad row (local number).
+    struct Chunk {
+        values: Vec<f64>,
+        rows: usize,
+        failure: Option<(usize, Error)>,
+    }
+    let parsed: Vec<Chunk> = chunks
+        .par_iter()
+        .map(|chunk| {
+            let mut values = Vec::with_capacity(chunk.len() / 8);
+            let mut rows = 0usize;
+            for line in chunk.split(|&b| b == b'\n') {
+                let line = trim_cr(line);
+                if line.is_empty() {
+                    continue;
+                }
+                rows += 1;
+                // Parse with a placeholder row number; the true one needs earlier chunks.
+                match parse_cells(
+                    path,
+                    line.split(|&b| b == b','),
+                    0,
+                    width,
+                    &features,
+                    &names,
+                ) {
+                    Ok(row) => values.extend_from_slice(&row),
+                    Err(error) => {
+                        return Chunk {
+                            values,
+                            rows,
+                            failure: Some((rows, error)),
+                        };
+                    }
+                }
+            }
+            Chunk {
+                values,
+                rows,
+                failure: None,
+            }
+        })
+        .collect();
+    let total: usize = parsed.iter().map(|c| c.values.len()).sum();
+    let mut values = Vec::with_capacity(total);
+    let mut rows_before = 0;
+    for chunk in parsed {
+        if let Some((local, error)) = chunk.failure {
+            return Err(renumber_row(error, rows_before + local));
+        }
+        values.extend_from_slice(&chunk.values);
+        rows_before += chunk.rows;
+    }
+    Ok((names, features, rows_before, values))
+}
+
+/// Puts the true 1-based data row into an error made with a placeholder.
+fn renumber_row(error: Error, global: usize) -> Error {
+    match error {
+        Error::RaggedRow {
+            path,
+            expected,
+            found,
+            ..
+        } => Error::RaggedRow {
+            path,
+            row: global,
+            expected,
+            found,
+        },
+        Error::BadCell {
+            path,
+            column,
+            fault,
+            ..
+        } => Error::BadCell {
+            path,
+            row: global,
+            column,
+            fault,
+        },
+        other => other,
+    }
+}
+
+fn trim_cr(line: &[u8]) -> &[u8] {
+    line.strip_suffix(b"\r").unwrap_or(line)
+}
+
+fn header_names<'a>(path: &Path, header: impl Iterator<Item = &'a [u8]>) -> Result<Vec<String>> {
+    let mut names = Vec::new();
+    for (i, raw) in header.enumerate() {
         let text = String::from_utf8_lossy(raw);
         let text = if i == 0 {
             text.trim_start_matches('\u{feff}')
@@ -138,26 +276,26 @@ fn select_features(path: &Path, names: &[String], options: &CsvOptions) -> Resul
     Ok(features)
 }
 
-fn parse_record(
+fn parse_cells<'a>(
     path: &Path,
-    record: &ByteRecord,
+    cells: impl Iterator<Item = &'a [u8]>,
     row: usize,
     width: usize,
     features: &[usize],
     names: &[String],
 ) -> Result<Vec<f64>> {
-    if record.len() != width {
+    let cells: Vec<&[u8]> = cells.collect();
+    if cells.len() != width {
         return Err(Error::RaggedRow {
             path: path.to_path_buf(),
             row,
             expected: width,
-            found: record.len(),
+            found: cells.len(),
         });
     }
     let mut out = Vec::with_capacity(features.len());
     for &c in features {
-        let raw = &record[c];
-        match parse_cell(raw) {
+        match parse_cell(cells[c]) {
             Ok(value) => out.push(value),
             Err(fault) => {
                 return Err(Error::BadCell {

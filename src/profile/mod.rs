@@ -279,6 +279,27 @@ impl Profile {
         )
     }
 
+    /// Each raw feature's spread in the fitted rows (population standard deviation): the
+    /// scale for finite-difference steps and for anything else measured per feature.
+    pub fn feature_spread(&self) -> Vec<f64> {
+        match &self.embedding {
+            FittedEmbedding::Standardize { scale, .. } | FittedEmbedding::Pca { scale, .. } => {
+                scale.clone()
+            }
+            FittedEmbedding::None { .. } => {
+                // Without an embedding the indexed rows are the raw fitted rows.
+                let rows = self.index.rows();
+                let n = rows.nrows() as f64;
+                rows.axis_iter(Axis(1))
+                    .map(|column| {
+                        let mean = column.sum() / n;
+                        (column.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n).sqrt()
+                    })
+                    .collect()
+            }
+        }
+    }
+
     /// Checks that an input has the profile's columns: the same count and, when both
     /// sides have header names, the same names in the same order.
     pub fn check_input(&self, input: &FeatureMatrix) -> Result<()> {

@@ -275,3 +275,37 @@ fn wrong_flags_are_usage_errors() {
     kilter(dir.path(), &["no-such-command"]).expect_status(2);
     kilter(dir.path(), &["fit", "--help"]).expect_status(0);
 }
+
+/// A file larger than one parallel chunk, with blank lines and a bad cell deep inside:
+/// the row number counts data rows as a person does, and the quoted-file reader (used
+/// when any quote appears) agrees with the fast unquoted one.
+#[test]
+fn row_numbers_survive_parallel_parsing() {
+    let dir = temp_dir();
+    let mut text = String::from("a,b,c\n");
+    for i in 1..=300_000usize {
+        if i == 250_000 {
+            text.push_str("1.5,oops,2\n");
+        } else {
+            text.push_str(&format!("{}.{:09},{},{}\n", i % 97, i, i % 13, i % 7));
+        }
+        if i % 50_000 == 0 {
+            text.push('\n');
+        }
+    }
+    assert!(text.len() > 5_000_000, "the file must span several chunks");
+    std::fs::write(dir.path().join("big.csv"), &text).unwrap();
+    std::fs::write(
+        dir.path().join("quoted.csv"),
+        text.replacen("a,b,c", "\"a\",b,c", 1),
+    )
+    .unwrap();
+    for file in ["big.csv", "quoted.csv"] {
+        fit(dir.path(), file, &[]).expect_status(2).expect_stderr(&[
+            file,
+            "row 250000",
+            "column \"b\"",
+            "\"oops\" is not a number",
+        ]);
+    }
+}

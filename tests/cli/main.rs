@@ -8,6 +8,8 @@ mod tolerance;
 mod calibration;
 mod golden;
 mod inputs;
+mod models;
 mod neighbours;
+mod onnx;
 mod profiles;
 mod records;

@@ -188,3 +188,42 @@ fn inputs_must_match_the_profile() {
     .expect_status(2)
     .expect_stderr(&["feature column 1 is \"malic_acid\"", "expects \"alcohol\""]);
 }
+
+/// The per-feature spread is the population standard deviation of the fitted rows,
+/// whatever the embedding (checked against a direct computation on the wine corpus).
+#[test]
+fn feature_spread_is_the_population_sd() {
+    use kilter::corpus::{read_matrix, CsvOptions};
+    use kilter::embedding::EmbeddingSpec;
+    use kilter::profile::ProfileSettings;
+    let options = CsvOptions {
+        id_columns: vec![],
+        label_columns: vec!["cultivar".into()],
+    };
+    let wine = read_matrix(&repo("reference-corpora/wine.csv"), &options).unwrap();
+    let n = wine.rows() as f64;
+    let direct: Vec<f64> = wine
+        .values
+        .columns()
+        .into_iter()
+        .map(|c| {
+            let m = c.sum() / n;
+            (c.iter().map(|v| (v - m).powi(2)).sum::<f64>() / n).sqrt()
+        })
+        .collect();
+    for embed in [
+        EmbeddingSpec::None,
+        EmbeddingSpec::Standardize,
+        EmbeddingSpec::Pca { components: 4 },
+    ] {
+        let settings = ProfileSettings {
+            embed,
+            holdout: 0.0,
+            ..ProfileSettings::default()
+        };
+        let spread = settings.fit(&wine).unwrap().feature_spread();
+        for (a, b) in spread.iter().zip(&direct) {
+            assert!((a - b).abs() <= 1e-12 * b, "{embed}: {a} vs {b}");
+        }
+    }
+}

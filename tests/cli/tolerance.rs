@@ -19,3 +19,20 @@ pub const P_VALUE_ABSOLUTE: f64 = 1e-12;
 pub fn relative_difference(a: f64, b: f64) -> f64 {
     (a - b).abs() / a.abs().max(b.abs()).max(1e-300)
 }
+
+/// Float32 inference (ONNX graphs exported with a float input) against scikit-learn's
+/// double-precision predict_proba: a probability is bounded, and single-precision
+/// evaluation of these small graphs leaves errors near 1e-7 (measured maxima are in the
+/// report of each test); 1e-5 is the bound the adapter is held to.
+pub const FLOAT32_PROBABILITY: f64 = 1e-5;
+
+/// Unbounded float32 outputs (logits, principal-component scores) are compared relative to
+/// the sum of the absolute terms of their dot products, the scale of their rounding error.
+pub const FLOAT32_RELATIVE_TO_TERMS: f64 = 1e-5;
+
+/// kilter's JSON networks compute in double precision like scikit-learn, with the scaler
+/// folded into the first layer, which changes the order of the operations only.
+pub const DOUBLE_PROBABILITY: f64 = 1e-9;
+
+/// Back-propagated against analytic gradients, both in double precision.
+pub const GRADIENT_RELATIVE: f64 = 1e-12;
