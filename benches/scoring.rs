@@ -47,7 +47,7 @@ fn w1(c: &mut Criterion) {
         ..ProfileSettings::default()
     };
     let profile = settings.fit(&reference).expect("fit");
-    let embedded_queries = profile.embed(queries.view());
+    let embedded_queries = profile.embed(queries.view()).expect("embed");
     let index = BruteForceIndex::new(profile.index().rows().to_owned());
 
     let mut group = c.benchmark_group("w1_50000x32_20000_queries_k10");

@@ -118,6 +118,21 @@ impl OnnxModel {
         }
     }
 
+    /// Builds a model from ONNX bytes held in memory (an encoder kept inside a profile);
+    /// `origin` names it in errors.
+    pub fn from_bytes(origin: &Path, bytes: &[u8], output: Option<&str>) -> Result<OnnxModel> {
+        match guarded(|| load_bytes(origin, bytes, output)) {
+            Ok(result) => result,
+            Err(panic) => Err(Error::ModelFile {
+                path: origin.to_path_buf(),
+                detail: format!(
+                    "the ONNX runtime failed while reading the model: {}",
+                    panic_message(&panic)
+                ),
+            }),
+        }
+    }
+
     /// The name of the output the model answers with.
     pub fn output_name(&self) -> &str {
         &self.output

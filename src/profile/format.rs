@@ -84,7 +84,7 @@ impl Profile {
             format: FORMAT_NAME.into(),
             version: FORMAT_VERSION,
             written_by: format!("kilter {}", env!("CARGO_PKG_VERSION")),
-            settings: self.settings,
+            settings: self.settings.clone(),
             feature_names: self.feature_names.clone(),
             named_features: self.named_features,
             reference_rows: self.reference_rows,
@@ -221,6 +221,11 @@ fn build(
     mut sections: Vec<Vec<f64>>,
 ) -> std::result::Result<Profile, ProfileFault> {
     let bad = |what: &str| ProfileFault::Inconsistent(what.to_string());
+    let mut header = header;
+    header
+        .embedding
+        .prepare()
+        .map_err(|e| ProfileFault::Inconsistent(format!("its encoder cannot be loaded: {e}")))?;
     let n = header.fitted_rows;
     let d = header.embedded_dim;
     header.embedding.validate().map_err(|e| bad(&e))?;

@@ -26,7 +26,7 @@ use crate::stats::{
 pub use format::{FORMAT_NAME, FORMAT_VERSION};
 
 /// The settings of `kilter fit`, validated.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ProfileSettings {
     /// How inputs are embedded.
     pub embed: EmbeddingSpec,
@@ -134,7 +134,7 @@ impl ProfileSettings {
         let fit_values = reference.values.select(Axis(0), &fit_rows);
 
         let embedding = self.embed.fit(fit_values.view(), &reference.names)?;
-        let embedded_fit = embedding.embed(fit_values.view());
+        let embedded_fit = embedding.embed(fit_values.view())?;
         let estimate = self.covariance.estimate(embedded_fit.view())?;
         let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
 
@@ -148,7 +148,7 @@ impl ProfileSettings {
                 in_sample.distances.column(self.k - 1).to_owned(),
             ),
             Some(rows) => {
-                let held_out = embedding.embed(reference.values.select(Axis(0), &rows).view());
+                let held_out = embedding.embed(reference.values.select(Axis(0), &rows).view())?;
                 let nn = index.k_nearest(held_out.view(), self.k, Exclusion::None)?;
                 (
                     mahalanobis.squared_distances(held_out.view()),
@@ -158,7 +158,7 @@ impl ProfileSettings {
         };
 
         Ok(Profile {
-            settings: *self,
+            settings: self.clone(),
             feature_names: reference.names.clone(),
             named_features: reference.named,
             reference_rows: n,
@@ -286,6 +286,7 @@ impl Profile {
             FittedEmbedding::Standardize { scale, .. } | FittedEmbedding::Pca { scale, .. } => {
                 scale.clone()
             }
+            FittedEmbedding::Onnx(encoder) => encoder.feature_spread().to_vec(),
             FittedEmbedding::None { .. } => {
                 // Without an embedding the indexed rows are the raw fitted rows.
                 let rows = self.index.rows();
@@ -336,7 +337,7 @@ impl Profile {
     }
 
     /// Embeds raw input rows.
-    pub fn embed(&self, rows: ArrayView2<'_, f64>) -> Array2<f64> {
+    pub fn embed(&self, rows: ArrayView2<'_, f64>) -> Result<Array2<f64>> {
         self.embedding.embed(rows)
     }
 
@@ -373,7 +374,7 @@ impl Profile {
         first_row: usize,
         alpha: f64,
     ) -> Result<Vec<ScoreRecord>> {
-        let embedded = self.embed(rows);
+        let embedded = self.embed(rows)?;
         let s = self.score_embedded(embedded.view())?;
         let df = self.embedded_dim();
         Ok((0..rows.nrows())

@@ -71,9 +71,12 @@ fn conformal_p_values_hold_their_level_on_exchangeable_data() {
         let mut rng = ChaCha8Rng::seed_from_u64(1000 + seed);
         let reference = matrix(gaussian_rows(REFERENCE, &mut rng));
         let queries = gaussian_rows(QUERIES, &mut rng);
-        let profile = ProfileSettings { seed, ..settings }
-            .fit(&reference)
-            .unwrap();
+        let profile = ProfileSettings {
+            seed,
+            ..settings.clone()
+        }
+        .fit(&reference)
+        .unwrap();
         let records = profile.score(queries.view(), 0, ALPHA).unwrap();
         let rate = |f: &dyn Fn(&kilter::profile::ScoreRecord) -> bool| {
             records.iter().filter(|r| f(r)).count() as f64 / QUERIES as f64
@@ -120,7 +123,7 @@ fn holdout_splits_rows_by_seed() {
     assert_eq!(a.to_bytes(), again.to_bytes(), "same seed, same profile");
     let other = ProfileSettings {
         seed: 1,
-        ..settings
+        ..settings.clone()
     }
     .fit(&reference)
     .unwrap();
@@ -132,7 +135,7 @@ fn holdout_splits_rows_by_seed() {
 
     let in_sample = ProfileSettings {
         holdout: 0.0,
-        ..settings
+        ..settings.clone()
     }
     .fit(&reference)
     .unwrap();

@@ -6,6 +6,7 @@ mod harness;
 mod tolerance;
 
 mod calibration;
+mod encoder;
 mod golden;
 mod inputs;
 mod models;

@@ -217,7 +217,7 @@ fn feature_spread_is_the_population_sd() {
         EmbeddingSpec::Pca { components: 4 },
     ] {
         let settings = ProfileSettings {
-            embed,
+            embed: embed.clone(),
             holdout: 0.0,
             ..ProfileSettings::default()
         };
