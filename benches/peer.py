@@ -122,7 +122,8 @@ class Stopwatch:
     def __exit__(self, *exc):
         self.elapsed = time.perf_counter() - self._start
         busy, own = self._cpu()
-        self.foreign_cpu = max(0.0, (busy - self._busy) - (own - self._own))
+        self.own_cpu = own - self._own
+        self.foreign_cpu = max(0.0, (busy - self._busy) - self.own_cpu)
         return False
 
 
@@ -145,10 +146,10 @@ def best_of(runs, fn, patience=3):
     while len(record) < patience * runs:
         with Stopwatch() as watch:
             results.append(fn())
-        record.append((watch.elapsed, watch.foreign_cpu))
-        if sum(not disturbed(f, t) for t, f in record) >= runs:
+        record.append((watch.elapsed, watch.foreign_cpu, watch.own_cpu))
+        if sum(not disturbed(f, t) for t, f, _ in record) >= runs:
             break
-    clean = [i for i, (t, f) in enumerate(record) if not disturbed(f, t)]
+    clean = [i for i, (t, f, _) in enumerate(record) if not disturbed(f, t)]
     pool = clean or range(len(record))
     best = min(pool, key=lambda i: record[i][0])
     return record[best][0], record, record[best][1], results[best]
@@ -551,7 +552,15 @@ def main():
 
 
 def run_list(record):
-    return ", ".join(f"{t:.3f}" + ("*" if disturbed(f, t) else "") for t, f in record)
+    return ", ".join(f"{t:.3f}" + ("*" if disturbed(f, t) else "") for t, f, _ in record)
+
+
+def cores_used(record, seconds):
+    """CPU-seconds per wall-clock second of the reported (best) run."""
+    for t, _, own in record:
+        if t == seconds:
+            return own / t if t > 0 else float("nan")
+    return float("nan")
 
 
 def print_report(info):
@@ -598,8 +607,9 @@ def print_report(info):
                    + run_list(k["score_runs_s"])
                    + f" s; a 1-row input takes {k['one_row_score_s']:.3f} s (process start + profile "
                    f"load, profile {k['profile_bytes'] / 1e6:.1f} MB); fit {k['fit_s']:.2f} s. "
-                   f"Other processes' CPU during the best run: {k['score_foreign_cpu_s']:.2f} s "
-                   f"(score), {k['fit_foreign_cpu_s']:.2f} s (fit).")
+                   f"Best score run used {cores_used(k['score_runs_s'], k['score_s']):.2f} cores; "
+                   f"other processes' CPU during it {k['score_foreign_cpu_s']:.2f} s "
+                   f"(fit: {k['fit_foreign_cpu_s']:.2f} s).")
         out.append(f"  Mahalanobis in the peers: {r['mahalanobis_method']} ("
                    + "; ".join(f"{n} {t * 1e3:.1f} ms" for n, t in r["mahalanobis_timings_s"].items())
                    + ").")
@@ -610,8 +620,9 @@ def print_report(info):
                        f" + LOF/p-values {st['lof_and_p_values']:.3f} (runs "
                        + run_list(p["query_runs_s"])
                        + f"); untimed reference setup {p['reference_setup_s']:.1f} s; "
-                       f"p_combined mismatches {p['p_combined_mismatches']}; other processes' CPU "
-                       f"during the best run {p['foreign_cpu_s']:.2f} s.")
+                       f"p_combined mismatches {p['p_combined_mismatches']}; the best run used "
+                       f"{cores_used(p['query_runs_s'], p['query_s']):.2f} cores, other processes "
+                       f"{p['foreign_cpu_s']:.2f} CPU-s meanwhile.")
     out.append("")
     m = info["machine"]
     out.append(f"Machine: {m['cpu']}, nproc {m['nproc']}, Python {m['python']}, {m['platform']}")

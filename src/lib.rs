@@ -18,9 +18,11 @@
 //! - [`output`]: JSON Lines and CSV records, written atomically;
 //! - [`scenario`]: the invented example data of `kilter demo`.
 
+pub mod attribution;
 pub mod corpus;
 pub mod embedding;
 pub mod error;
+pub mod groups;
 pub mod linalg;
 pub mod models;
 pub mod neighbours;

@@ -9,7 +9,7 @@ use clap::{Args, Parser, Subcommand};
 #[derive(Debug, Parser)]
 #[command(name = "kilter", version, about, long_about = None, propagate_version = true)]
 pub struct Cli {
-    /// No progress or summaries on stderr.
+    /// No summaries or progress output (records and errors still appear).
     #[arg(long, global = true)]
     pub quiet: bool,
 
@@ -28,7 +28,7 @@ pub enum Command {
     /// Run a model on inputs and print its outputs (check that it loads and answers).
     #[command(after_help = PREDICT_EXAMPLE)]
     Predict(PredictArgs),
-    /// Run the whole job on kilter's invented example scenario.
+    /// Fit and score kilter's invented example scenario, masked inputs included.
     #[command(after_help = DEMO_EXAMPLE)]
     Demo(DemoArgs),
 }
@@ -62,7 +62,7 @@ pub struct FitArgs {
     /// Where to write the profile.
     #[arg(long, value_name = "PROFILE")]
     pub out: PathBuf,
-    /// Embedding: none, standardize, or pca:R.
+    /// Embedding: none, standardize, pca:R, or onnx:FILE[:OUTPUT] (a learned encoder).
     #[arg(long, default_value = "standardize", value_name = "EMBED")]
     pub embed: String,
     /// Covariance estimator: empirical or ledoit-wolf.

@@ -1,0 +1,12 @@
+//! Attribution estimators over groups of features.
+//!
+//! [`coalitions`] draws the mask design for the Shapley kernel; [`shapley`] turns the
+//! model's values on those masks into Shapley-value estimates with standard errors. The
+//! perturbation families (deletion, replacement) supply the values; both use the same
+//! design, so that any difference between their attributions comes from the fill alone.
+
+pub mod coalitions;
+pub mod shapley;
+
+pub use coalitions::CoalitionDesign;
+pub use shapley::{estimate_shapley, ShapleyEstimate};
