@@ -158,7 +158,10 @@ pub enum Error {
     },
 
     /// One cell is empty, not a number, or not finite.
-    #[error("{path}: row {row}, {column}: {fault}")]
+    #[error(
+        "{path}: row {row}, {column}: {fault}{}",
+        text_column_hint(column, fault)
+    )]
     BadCell {
         path: PathBuf,
         row: usize,
@@ -307,5 +310,16 @@ fn stderr_section(tail: &str) -> String {
     } else {
         let indented: Vec<String> = tail.lines().map(|l| format!("    {l}")).collect();
         format!("\n  last lines of its stderr:\n{}", indented.join("\n"))
+    }
+}
+
+/// A text cell in a named column is most often an identifier or a label.
+fn text_column_hint(column: &ColumnRef, fault: &CellFault) -> String {
+    match (column, fault) {
+        (ColumnRef::Named(name), CellFault::NotNumeric(_)) => format!(
+            " (if \"{name}\" identifies rows or holds labels, drop it with --id-column \"{name}\" \
+             or --label-column \"{name}\")"
+        ),
+        _ => String::new(),
     }
 }
