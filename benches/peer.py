@@ -10,7 +10,8 @@ their local outlier factor against the reference rows, the conformal p-values of
 Mahalanobis distance and of the k-th neighbour distance against in-sample calibration
 scores, and the combined p-value min(1, 2 min(p_mahalanobis, p_knn)).
 
-kilter is timed end to end as a process (wall clock, best of N): loading the profile,
+kilter is timed end to end as a process (wall clock, the best of N runs that other
+processes did not disturb; see `best_of`): loading the profile,
 reading the .npy input, scoring and writing JSON Lines. The peers are timed on the query
 side only, in memory, with everything reference-side (the scaler, the covariance, the
 calibration scores, the reference rows' k-distances and densities, the neighbour index)
@@ -466,7 +467,7 @@ def main():
     parser.add_argument("--kilter", default="target/release/kilter",
                         help="kilter binary (default target/release/kilter; better a copy)")
     parser.add_argument("--workload", default="W1", choices=[*WORKLOADS, "all"])
-    parser.add_argument("--runs", type=int, default=3, help="timed runs, best kept (default 3)")
+    parser.add_argument("--runs", type=int, default=3, help="undisturbed timed runs wanted, the best kept (default 3)")
     parser.add_argument("--seed", type=int, default=0, help="data seed (default 0)")
     parser.add_argument("--json", metavar="FILE", help="also save the numbers as JSON")
     parser.add_argument("--keep", action="store_true", help="keep the temporary data directory")
