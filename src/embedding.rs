@@ -184,14 +184,9 @@ impl OnnxEncoder {
     /// Reads and loads the encoder; its input width must be the data's.
     fn fit(path: &Path, output: Option<&str>, rows: ArrayView2<'_, f64>) -> Result<OnnxEncoder> {
         let features = rows.ncols();
-        let n = rows.nrows() as f64;
-        let feature_spread = rows
-            .axis_iter(Axis(1))
-            .map(|c| {
-                let m = c.sum() / n;
-                (c.iter().map(|v| (v - m).powi(2)).sum::<f64>() / n).sqrt()
-            })
-            .collect();
+        let feature_spread = column_mean_and_sd(rows)
+            .map(|(_, sd)| sd.to_vec())
+            .unwrap_or_default();
         let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
         let model = load_encoder(path, &bytes, output)?;
         let probe = model.predict(Array2::<f64>::zeros((1, features)).view())?;
@@ -302,27 +297,32 @@ fn standardization(
     rows: ArrayView2<'_, f64>,
     names: &[String],
 ) -> Result<(Array1<f64>, Array1<f64>)> {
-    let mean = rows.mean_axis(Axis(0)).ok_or(Error::TooFewRows {
+    let (mean, scale) = column_mean_and_sd(rows).ok_or(Error::TooFewRows {
         what: "standardizing".into(),
         needed: 1,
         found: 0,
     })?;
-    let n = rows.nrows() as f64;
-    let mut scale = Array1::<f64>::zeros(rows.ncols());
-    for (c, column) in rows.axis_iter(Axis(1)).enumerate() {
-        let m = mean[c];
-        let var = column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n;
-        let sd = var.sqrt();
+    for (c, (&m, &sd)) in mean.iter().zip(&scale).enumerate() {
         // Relative test: a column whose spread is round-off of its level is constant.
         if sd.is_nan() || sd <= 1e-12 * m.abs().max(f64::MIN_POSITIVE) {
             return Err(Error::ConstantColumn {
                 column: names.get(c).cloned().unwrap_or_else(|| (c + 1).to_string()),
-                value: column[0],
+                value: rows[[0, c]],
             });
         }
-        scale[c] = sd;
     }
     Ok((mean, scale))
+}
+
+/// Column means and population standard deviations (divisor n); `None` without rows.
+pub fn column_mean_and_sd(rows: ArrayView2<'_, f64>) -> Option<(Array1<f64>, Array1<f64>)> {
+    let mean = rows.mean_axis(Axis(0))?;
+    let n = rows.nrows() as f64;
+    let sd =
+        Array1::from_iter(rows.axis_iter(Axis(1)).zip(&mean).map(|(column, &m)| {
+            (column.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n).sqrt()
+        }));
+    Some((mean, sd))
 }
 
 impl Embedding for FittedEmbedding {

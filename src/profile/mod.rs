@@ -15,7 +15,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use crate::corpus::FeatureMatrix;
-use crate::embedding::{Embedding, EmbeddingSpec, FittedEmbedding};
+use crate::embedding::{column_mean_and_sd, Embedding, EmbeddingSpec, FittedEmbedding};
 use crate::error::{Error, Result};
 use crate::neighbours::{BruteForceIndex, Exclusion, LocalOutlierFactor, NeighbourIndex};
 use crate::stats::{
@@ -289,14 +289,9 @@ impl Profile {
             FittedEmbedding::Onnx(encoder) => encoder.feature_spread().to_vec(),
             FittedEmbedding::None { .. } => {
                 // Without an embedding the indexed rows are the raw fitted rows.
-                let rows = self.index.rows();
-                let n = rows.nrows() as f64;
-                rows.axis_iter(Axis(1))
-                    .map(|column| {
-                        let mean = column.sum() / n;
-                        (column.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n).sqrt()
-                    })
-                    .collect()
+                column_mean_and_sd(self.index.rows())
+                    .map(|(_, sd)| sd.to_vec())
+                    .unwrap_or_default()
             }
         }
     }

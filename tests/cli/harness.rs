@@ -111,3 +111,19 @@ pub fn write_npy(path: &Path, major: u8, descr: &str, shape: &[usize], data: &[u
     bytes.extend_from_slice(data);
     std::fs::write(path, bytes).expect("write npy");
 }
+
+/// Fits the wine corpus into `DIR/w.kprofile` with `extra` flags; panics unless it works.
+pub fn fit_wine(dir: &Path, extra: &[&str]) {
+    let wine = repo("reference-corpora/wine.csv");
+    let mut args = vec![
+        "fit",
+        "--reference",
+        wine.to_str().expect("UTF-8 path"),
+        "--label-column",
+        "cultivar",
+        "--out",
+        "w.kprofile",
+    ];
+    args.extend_from_slice(extra);
+    kilter(dir, &args).expect_status(0);
+}

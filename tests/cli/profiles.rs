@@ -2,24 +2,7 @@
 
 use std::path::Path;
 
-use crate::harness::{kilter, listing, repo, temp_dir};
-
-fn wine_profile(dir: &Path) {
-    let wine = repo("reference-corpora/wine.csv");
-    kilter(
-        dir,
-        &[
-            "fit",
-            "--reference",
-            wine.to_str().unwrap(),
-            "--label-column",
-            "cultivar",
-            "--out",
-            "w.kprofile",
-        ],
-    )
-    .expect_status(0);
-}
+use crate::harness::{fit_wine, kilter, listing, repo, temp_dir};
 
 fn score(dir: &Path, profile: &str) -> crate::harness::Run {
     let wine = repo("reference-corpora/wine.csv");
@@ -75,7 +58,7 @@ fn fit_summary_reports_what_was_fitted() {
 #[test]
 fn damaged_profiles_are_refused() {
     let dir = temp_dir();
-    wine_profile(dir.path());
+    fit_wine(dir.path(), &[]);
     let good = std::fs::read(dir.path().join("w.kprofile")).unwrap();
     score(dir.path(), "w.kprofile").expect_status(0);
 
@@ -145,7 +128,7 @@ fn profile_roundtrip_keeps_every_score() {
 #[test]
 fn inputs_must_match_the_profile() {
     let dir = temp_dir();
-    wine_profile(dir.path());
+    fit_wine(dir.path(), &[]);
     let wine = std::fs::read_to_string(repo("reference-corpora/wine.csv")).unwrap();
     // One column fewer.
     let fewer: String = wine

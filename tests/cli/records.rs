@@ -1,30 +1,11 @@
 //! Record output: JSON Lines and CSV, stdout, and output paths checked before any work.
 
-use crate::harness::{kilter, listing, read_scores, repo, temp_dir};
-
-fn fit_wine(dir: &std::path::Path) {
-    let wine = repo("reference-corpora/wine.csv");
-    kilter(
-        dir,
-        &[
-            "fit",
-            "--reference",
-            wine.to_str().unwrap(),
-            "--label-column",
-            "cultivar",
-            "--holdout",
-            "0",
-            "--out",
-            "w.kprofile",
-        ],
-    )
-    .expect_status(0);
-}
+use crate::harness::{fit_wine, kilter, listing, read_scores, repo, temp_dir};
 
 #[test]
 fn jsonl_csv_and_stdout_carry_the_same_records() {
     let dir = temp_dir();
-    fit_wine(dir.path());
+    fit_wine(dir.path(), &["--holdout", "0"]);
     let wine = repo("reference-corpora/wine.csv");
     let input = wine.to_str().unwrap();
     let base = [
@@ -68,7 +49,7 @@ fn jsonl_csv_and_stdout_carry_the_same_records() {
 #[test]
 fn alpha_sets_the_flag() {
     let dir = temp_dir();
-    fit_wine(dir.path());
+    fit_wine(dir.path(), &["--holdout", "0"]);
     let wine = repo("reference-corpora/wine.csv");
     let run = kilter(
         dir.path(),
@@ -111,7 +92,7 @@ fn alpha_sets_the_flag() {
 #[test]
 fn bad_output_paths_are_refused_before_any_work() {
     let dir = temp_dir();
-    fit_wine(dir.path());
+    fit_wine(dir.path(), &["--holdout", "0"]);
     let wine = repo("reference-corpora/wine.csv");
     let input = wine.to_str().unwrap();
     let before = listing(dir.path());
