@@ -220,6 +220,16 @@ pub enum Error {
     #[error("{path}: {fault}")]
     Profile { path: PathBuf, fault: ProfileFault },
 
+    /// `audit --fail-under R`: rows scored below the bar (their records were written).
+    #[error("{count} of {rows} rows have reliability below --fail-under {bar} (lowest {lowest:.3}, row {lowest_row})")]
+    BelowBar {
+        count: usize,
+        rows: usize,
+        bar: f64,
+        lowest: f64,
+        lowest_row: usize,
+    },
+
     /// An input does not fit the profile it is scored against.
     #[error("{path}: {detail}")]
     InputMismatch { path: PathBuf, detail: String },
@@ -290,6 +300,7 @@ impl Error {
             | Error::ModelReported { .. }
             | Error::ModelFailed { .. }
             | Error::ModelTimeout { .. } => 1,
+            Error::BelowBar { .. } => 3,
             _ => 2,
         }
     }

@@ -19,6 +19,8 @@
 //! - [`scenario`]: the invented example data of `kilter demo`.
 
 pub mod attribution;
+pub mod audit;
+pub mod baselines;
 pub mod corpus;
 pub mod embedding;
 pub mod error;
@@ -27,6 +29,7 @@ pub mod linalg;
 pub mod models;
 pub mod neighbours;
 pub mod output;
+pub mod perturbation;
 pub mod profile;
 pub mod scenario;
 pub mod stats;

@@ -185,6 +185,12 @@ fn flatten(prefix: &str, value: &Value, out: &mut Vec<(String, Value)>) {
                 flatten(&key, v, out);
             }
         }
+        Value::Array(items) if items.iter().all(Value::is_string) => {
+            // A list of sentences (reasons) varies in length from record to record, and
+            // CSV columns are fixed by the first record: one cell, sentences joined.
+            let joined: Vec<&str> = items.iter().filter_map(Value::as_str).collect();
+            out.push((prefix.to_string(), Value::String(joined.join(" | "))));
+        }
         Value::Array(items) if items.iter().all(|v| !v.is_object() && !v.is_array()) => {
             // A list of scalars (an attribution vector) becomes one cell per element.
             for (i, v) in items.iter().enumerate() {

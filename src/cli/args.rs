@@ -28,6 +28,10 @@ pub enum Command {
     /// Run a model on inputs and print its outputs (check that it loads and answers).
     #[command(after_help = PREDICT_EXAMPLE)]
     Predict(PredictArgs),
+    /// Audit explanations: attributions three ways, their distance from the data, their
+    /// agreement, and a reliability score with reasons for every input row.
+    #[command(after_help = AUDIT_EXAMPLE)]
+    Audit(Box<AuditArgs>),
     /// Fit and score kilter's invented example scenario, masked inputs included.
     #[command(after_help = DEMO_EXAMPLE)]
     Demo(DemoArgs),
@@ -40,6 +44,13 @@ const SCORE_EXAMPLE: &str = "Example:
 const PREDICT_EXAMPLE: &str = "Examples:
   kilter predict --model model.onnx --input rows.csv --label-column label
   kilter predict --model-cmd \"python3 examples/pipe_risk_model.py\" --input kilter-demo/segments.csv --id-column segment_id";
+const AUDIT_EXAMPLE: &str = "Examples:
+  kilter audit --profile wine.kprofile --model wine_model.json \\
+      --input new_batch.csv --label-column cultivar --out audit.jsonl
+  kilter audit --profile digits.kprofile --model digits.onnx --input digits.npy \\
+      --image 8x8 --patch 2 --sampler neighbours --fail-under 0.4
+
+Exit status 3 with --fail-under R: some row scored below R (all records are still written).";
 const DEMO_EXAMPLE: &str = "Example:
   kilter demo --out kilter-demo";
 
@@ -143,4 +154,69 @@ pub struct DemoArgs {
     /// Directory for the demo's files (created if missing).
     #[arg(long, default_value = "kilter-demo", value_name = "DIR")]
     pub out: PathBuf,
+}
+
+#[derive(Debug, Args)]
+pub struct AuditArgs {
+    /// Profile written by `kilter fit`.
+    #[arg(long, value_name = "PROFILE")]
+    pub profile: PathBuf,
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// Inputs whose explanations are audited: .csv or .npy, the profile's columns.
+    #[arg(long, value_name = "FILE")]
+    pub input: PathBuf,
+    /// Attributions computed elsewhere: one row per input row, one column per group.
+    #[arg(long, value_name = "FILE")]
+    pub explanations: Option<PathBuf>,
+    /// Groups of features (JSON list of lists of indices or names); default one per feature.
+    #[arg(long, value_name = "FILE", conflicts_with = "image")]
+    pub groups: Option<PathBuf>,
+    /// Inputs are row-major images HxW or HxWxC (channels last); needs --patch.
+    #[arg(long, value_name = "HxW[xC]", requires = "patch")]
+    pub image: Option<String>,
+    /// Side of the square patches that group image pixels.
+    #[arg(long, value_name = "P", requires = "image")]
+    pub patch: Option<usize>,
+    /// Output index explained; default: the top-scoring output of each input.
+    #[arg(long, value_name = "T")]
+    pub target: Option<usize>,
+    /// Masks (coalitions of groups) per row, shared by deletion and replacement.
+    #[arg(long, default_value_t = 1024, value_name = "N")]
+    pub samples: usize,
+    /// Replacement draws per mask, averaged.
+    #[arg(long, default_value_t = 4, value_name = "D")]
+    pub draws: usize,
+    /// Path points of the interpolation family.
+    #[arg(long, default_value_t = 64, value_name = "M")]
+    pub steps: usize,
+    /// Quadrature rule of the path: midpoint, trapezoid or gauss-legendre.
+    #[arg(long, default_value = "midpoint", value_name = "RULE")]
+    pub rule: String,
+    /// Baseline of the interpolation path: zero, mean, median or constant:V.
+    #[arg(long, default_value = "mean", value_name = "NAME")]
+    pub baseline: String,
+    /// What deletion sets masked groups to: zero, mean, or a number.
+    #[arg(long, default_value = "zero", value_name = "zero|mean|VALUE")]
+    pub fill: String,
+    /// How replacement draws masked groups: gaussian, neighbours or marginal.
+    #[arg(long, default_value = "gaussian", value_name = "SAMPLER")]
+    pub sampler: String,
+    /// Groups in the top-k overlap of the agreement statistics.
+    #[arg(long = "top-k", default_value_t = 3, value_name = "K")]
+    pub top_k: usize,
+    /// Seed of the masks, the draws and the detectability splits.
+    #[arg(long, default_value_t = 0, value_name = "S")]
+    pub seed: u64,
+    /// Significance level for off-manifold inputs.
+    #[arg(long, default_value_t = 0.01, value_name = "A")]
+    pub alpha: f64,
+    /// Exit with status 3 if any row's reliability is below R (records are still written).
+    #[arg(long = "fail-under", value_name = "R")]
+    pub fail_under: Option<f64>,
+    /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    #[command(flatten)]
+    pub columns: ColumnArgs,
 }

@@ -4,6 +4,7 @@
 //! library's validated settings first, so bad values fail before any file is read.
 
 mod args;
+mod audit;
 mod demo;
 mod fit;
 mod predict;
@@ -29,6 +30,7 @@ pub fn main() -> ExitCode {
         args::Command::Fit(a) => fit::run(a, &context),
         args::Command::Score(a) => score::run(a, &context),
         args::Command::Predict(a) => predict::run(a, &context),
+        args::Command::Audit(a) => audit::run(*a, &context),
         args::Command::Demo(a) => demo::run(a, &context),
     };
     match outcome {

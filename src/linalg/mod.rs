@@ -72,6 +72,22 @@ pub fn solve_lower_rows(l: &Array2<f64>, rows: ArrayView2<'_, f64>) -> Array2<f6
     out
 }
 
+/// Solves `Lᵀ x = b` by back substitution, for the second half of a Cholesky solve of a
+/// small system (`A x = b` with `A = L Lᵀ`). Shared by both backends: it is a few lines
+/// of O(d²) work on vectors no larger than the embedded dimension.
+pub fn solve_upper_from_lower(l: &Array2<f64>, b: ndarray::ArrayView1<'_, f64>) -> Array1<f64> {
+    let d = l.nrows();
+    let mut x = b.to_owned();
+    for i in (0..d).rev() {
+        let mut v = x[i];
+        for j in i + 1..d {
+            v -= l[[j, i]] * x[j];
+        }
+        x[i] = v / l[[i, i]];
+    }
+    x
+}
+
 /// Eigen-decomposition of a symmetric matrix: eigenvalues in descending order and the
 /// matching unit eigenvectors as columns, signs fixed so the largest-magnitude component
 /// of each is positive. `None` if the decomposition fails.

@@ -186,6 +186,49 @@ fn load_onnx(path: &Path, _output: Option<&str>) -> Result<Box<dyn Model>> {
 #[cfg(feature = "onnx")]
 pub mod onnx;
 
+/// Where gradients came from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum GradientMethod {
+    /// The model computed them (back-propagation, or a line-protocol model that answers
+    /// `gradients`).
+    Exact,
+    /// Central finite differences on the model's outputs.
+    FiniteDifference,
+}
+
+/// Gradients of output `target` at every row: the model's own when it has them, central
+/// differences otherwise.
+pub fn target_gradients(
+    model: &dyn Model,
+    differences: &FiniteDifference,
+    inputs: ArrayView2<'_, f64>,
+    target: usize,
+) -> Result<(Array2<f64>, GradientMethod)> {
+    match model.gradients(inputs, target)? {
+        Some(g) => Ok((g, GradientMethod::Exact)),
+        None => Ok((
+            differences.gradients(model, inputs, target)?,
+            GradientMethod::FiniteDifference,
+        )),
+    }
+}
+
+/// Checks that `target` names one of the model's outputs.
+pub fn check_target(outputs: &Array2<f64>, target: usize) -> Result<()> {
+    if target >= outputs.ncols() {
+        return Err(Error::InvalidSetting {
+            flag: "--target",
+            value: target.to_string(),
+            expected: format!(
+                "an output index below {}, the number of outputs the model answers",
+                outputs.ncols()
+            ),
+        });
+    }
+    Ok(())
+}
+
 /// Checks a model's answer: one finite output vector of one common length per input.
 pub(crate) fn check_outputs(outputs: &Array2<f64>, rows: usize, source: &str) -> Result<()> {
     if outputs.nrows() != rows {

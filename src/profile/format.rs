@@ -1,6 +1,7 @@
 //! The profile file: a signature, a format version, a JSON header with the settings and
 //! the small fitted statistics, binary little-endian `f64` sections for the large arrays
-//! (the indexed rows, LOF state, calibration scores), and a CRC-32 over all of it.
+//! (the indexed rows, LOF state, calibration scores, the raw fitted rows and their
+//! Gaussian for the replacement samplers), and a CRC-32 over all of it.
 //!
 //! ```text
 //! 0   12 bytes  signature  \x89 K L T P R O F \r \n \x1a \n
@@ -21,7 +22,7 @@ use std::path::Path;
 use ndarray::{Array1, Array2};
 use serde::{Deserialize, Serialize};
 
-use super::{Profile, ProfileSettings};
+use super::{FeatureDistribution, Profile, ProfileSettings};
 use crate::embedding::{Embedding, FittedEmbedding};
 use crate::error::{Error, ProfileFault, Result};
 use crate::neighbours::{BruteForceIndex, LocalOutlierFactor, NeighbourIndex};
@@ -30,7 +31,7 @@ use crate::stats::{CalibrationScores, CovarianceEstimate, MahalanobisModel};
 /// The format's name, recorded in the header.
 pub const FORMAT_NAME: &str = "kilter-profile";
 /// The format version this build writes and reads.
-pub const FORMAT_VERSION: u32 = 1;
+pub const FORMAT_VERSION: u32 = 2;
 
 const SIGNATURE: &[u8; 12] = b"\x89KLTPROF\r\n\x1a\n";
 const PREAMBLE: usize = 12 + 4 + 8;
@@ -61,24 +62,33 @@ struct Section {
     len: usize,
 }
 
-const SECTION_NAMES: [&str; 5] = [
+const SECTION_NAMES: [&str; 8] = [
     "index_rows",
     "lof_k_distance",
     "lof_density",
     "calibration_mahalanobis",
     "calibration_knn",
+    "feature_rows",
+    "feature_location",
+    "feature_covariance",
 ];
 
 impl Profile {
     /// Serialises the profile to bytes.
     pub fn to_bytes(&self) -> Vec<u8> {
         let rows = self.index.rows();
-        let sections: [&[f64]; 5] = [
+        let features = &self.features;
+        let feature_rows = features.rows().to_owned();
+        let feature_covariance = features.covariance().as_standard_layout().to_owned();
+        let sections: [&[f64]; 8] = [
             rows.as_slice().expect("index rows are in standard layout"),
             self.lof.k_distance(),
             self.lof.density(),
             self.calibration_mahalanobis.sorted(),
             self.calibration_knn.sorted(),
+            feature_rows.as_slice().expect("standard layout"),
+            features.location().as_slice().expect("contiguous"),
+            feature_covariance.as_slice().expect("standard layout"),
         ];
         let header = Header {
             format: FORMAT_NAME.into(),
@@ -240,11 +250,22 @@ fn build(
     {
         return Err(bad("location or covariance has the wrong size"));
     }
-    let calibration_knn = sections.pop().expect("five sections");
-    let calibration_mahalanobis = sections.pop().expect("five sections");
-    let density = sections.pop().expect("five sections");
-    let k_distance = sections.pop().expect("five sections");
-    let rows = sections.pop().expect("five sections");
+    let feature_covariance = sections.pop().expect("eight sections");
+    let feature_location = sections.pop().expect("eight sections");
+    let feature_rows = sections.pop().expect("eight sections");
+    let calibration_knn = sections.pop().expect("eight sections");
+    let calibration_mahalanobis = sections.pop().expect("eight sections");
+    let density = sections.pop().expect("eight sections");
+    let k_distance = sections.pop().expect("eight sections");
+    let rows = sections.pop().expect("eight sections");
+    let p = header.feature_names.len();
+    if feature_location.len() != p
+        || feature_covariance.len() != p * p
+        || p == 0
+        || feature_rows.len() % p != 0
+    {
+        return Err(bad("the feature distribution has the wrong size"));
+    }
     if rows.len() != n * d || k_distance.len() != n || density.len() != n {
         return Err(bad("the indexed rows do not match the declared shape"));
     }
@@ -258,6 +279,9 @@ fn build(
         .chain(&density)
         .chain(&calibration_mahalanobis)
         .chain(&calibration_knn)
+        .chain(&feature_rows)
+        .chain(&feature_location)
+        .chain(&feature_covariance)
         .chain(&header.location)
         .chain(header.covariance.iter().flatten())
         .all(|v| v.is_finite());
@@ -281,6 +305,15 @@ fn build(
     debug_assert_eq!(index.len(), n);
     let lof =
         LocalOutlierFactor::from_parts(k_distance, density).ok_or_else(|| bad("LOF state"))?;
+    let feature_rows = Array2::from_shape_vec((feature_rows.len() / p, p), feature_rows)
+        .map_err(|_| bad("feature rows"))?;
+    let features = FeatureDistribution::from_parts(
+        feature_rows,
+        Array1::from(feature_location),
+        Array2::from_shape_vec((p, p), feature_covariance)
+            .map_err(|_| bad("feature covariance"))?,
+    )
+    .ok_or_else(|| bad("the feature distribution"))?;
     Ok(Profile {
         settings: header.settings,
         feature_names: header.feature_names,
@@ -293,5 +326,6 @@ fn build(
         lof,
         calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis),
         calibration_knn: CalibrationScores::new(calibration_knn),
+        features,
     })
 }

@@ -6,7 +6,10 @@
 //! factor on the fitting rows, and scores the calibration rows to calibrate p-values.
 //! A [`Profile`] is self-contained: `score`, `audit` and `baseline` need nothing else.
 
+mod distribution;
 mod format;
+
+pub use distribution::FeatureDistribution;
 
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use rand::seq::SliceRandom;
@@ -66,6 +69,7 @@ pub struct Profile {
     lof: LocalOutlierFactor,
     calibration_mahalanobis: CalibrationScores,
     calibration_knn: CalibrationScores,
+    features: FeatureDistribution,
 }
 
 /// The off-manifold scores of one input row (SPEC: `kilter score`).
@@ -135,6 +139,7 @@ impl ProfileSettings {
 
         let embedding = self.embed.fit(fit_values.view(), &reference.names)?;
         let embedded_fit = embedding.embed(fit_values.view())?;
+        let features = FeatureDistribution::fit(fit_values)?;
         let estimate = self.covariance.estimate(embedded_fit.view())?;
         let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
 
@@ -169,6 +174,7 @@ impl ProfileSettings {
             lof,
             calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis.to_vec()),
             calibration_knn: CalibrationScores::new(calibration_knn.to_vec()),
+            features,
         })
     }
 
@@ -259,6 +265,11 @@ impl Profile {
     /// The neighbour index over the embedded fitted rows.
     pub fn index(&self) -> &BruteForceIndex {
         &self.index
+    }
+
+    /// The raw-feature distribution of the fitted rows (for the replacement samplers).
+    pub fn feature_distribution(&self) -> &FeatureDistribution {
+        &self.features
     }
 
     /// Calibration scores of the squared Mahalanobis distance.

@@ -7,6 +7,7 @@ mod tolerance;
 
 mod calibration;
 mod encoder;
+mod families;
 mod golden;
 mod groups;
 mod inputs;

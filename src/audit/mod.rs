@@ -1,0 +1,612 @@
+//! The audit: each input row's attribution computed three ways on the same masks, how far
+//! each family's perturbed inputs fall from the data, how the families agree, and a
+//! reliability score with the reasons behind it (SPEC: `kilter audit`).
+//!
+//! For one row, [`Auditor::audit_row`]:
+//!
+//! 1. asks the model for the original input's scores and picks the target;
+//! 2. draws one seeded Shapley-kernel mask design, and evaluates it under deletion (the
+//!    `--fill`) and under replacement (the `--sampler`), each into Shapley values with
+//!    standard errors;
+//! 3. integrates the gradients along the straight path from the baseline;
+//! 4. scores every perturbed input (and the input itself) against the profile, in one
+//!    batch, and trains the classifier two-sample test of each family;
+//! 5. compares the families ([`agreement`]) and weighs the evidence
+//!    ([`reliability`]).
+//!
+//! Every random choice comes from a ChaCha stream keyed by the seed, the row and the
+//! purpose, so a row's record does not depend on the thread that computed it or on the
+//! other rows.
+
+pub mod agreement;
+pub mod reliability;
+
+use std::fmt;
+use std::str::FromStr;
+use std::sync::Arc;
+
+use ndarray::{concatenate, Array2, ArrayView1, Axis};
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::attribution::{integrated_gradients, CoalitionDesign, QuadratureRule};
+use crate::baselines::{Baseline, BaselineSpec};
+use crate::error::{Error, Result};
+use crate::groups::Groups;
+use crate::models::{check_target, FiniteDifference, GradientMethod, Model};
+use crate::neighbours::NeighbourIndex;
+use crate::perturbation::masking::{evaluate_design, MaskedGame};
+use crate::perturbation::{
+    ConditionalGaussian, Deletion, FillValue, MarginalRows, NearestRows, PerturbationFamily,
+};
+use crate::profile::Profile;
+use crate::stats::detectability_auc;
+
+pub use agreement::Agreement;
+pub use reliability::{Assessment, Verdict};
+
+/// `--sampler`: how replacement fills masked groups.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Sampler {
+    /// The conditional Gaussian of the profile's raw-feature distribution.
+    Gaussian,
+    /// Masked values from the reference rows nearest in the kept features.
+    Neighbours,
+    /// Masked values from reference rows drawn independently of the input.
+    Marginal,
+}
+
+impl FromStr for Sampler {
+    type Err = Error;
+    fn from_str(text: &str) -> Result<Self> {
+        match text {
+            "gaussian" => Ok(Sampler::Gaussian),
+            "neighbours" | "neighbors" => Ok(Sampler::Neighbours),
+            "marginal" => Ok(Sampler::Marginal),
+            _ => Err(Error::InvalidSetting {
+                flag: "--sampler",
+                value: text.to_string(),
+                expected: "one of gaussian, neighbours, marginal".into(),
+            }),
+        }
+    }
+}
+
+impl fmt::Display for Sampler {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Sampler::Gaussian => "gaussian",
+            Sampler::Neighbours => "neighbours",
+            Sampler::Marginal => "marginal",
+        })
+    }
+}
+
+/// The settings of an audit, validated.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AuditSettings {
+    /// Masks (coalitions) per row, shared by deletion and replacement.
+    pub samples: usize,
+    /// Replacement draws per mask.
+    pub draws: usize,
+    /// Path points of the interpolation family.
+    pub steps: usize,
+    /// Quadrature rule of the path integral.
+    pub rule: QuadratureRule,
+    /// What deletion sets masked groups to.
+    pub fill: FillValue,
+    /// How replacement draws masked groups.
+    pub sampler: Sampler,
+    /// Where the path starts.
+    pub baseline: BaselineSpec,
+    /// The output explained; `None` picks the top-scoring one per row.
+    pub target: Option<usize>,
+    /// Seed of every random choice.
+    pub seed: u64,
+    /// Significance level for off-manifold.
+    pub alpha: f64,
+    /// Groups in the top-k overlap.
+    pub top_k: usize,
+}
+
+impl Default for AuditSettings {
+    fn default() -> Self {
+        AuditSettings {
+            samples: 1024,
+            draws: 4,
+            steps: 64,
+            rule: QuadratureRule::Midpoint,
+            fill: FillValue::Zero,
+            sampler: Sampler::Gaussian,
+            baseline: BaselineSpec::Mean,
+            target: None,
+            seed: 0,
+            alpha: 0.01,
+            top_k: 3,
+        }
+    }
+}
+
+impl AuditSettings {
+    /// Checks ranges that do not depend on the data.
+    pub fn validate(&self) -> Result<()> {
+        let positive = |flag: &'static str, v: usize, what: &str| {
+            if v == 0 {
+                Err(Error::InvalidSetting {
+                    flag,
+                    value: "0".into(),
+                    expected: format!("at least 1 {what}"),
+                })
+            } else {
+                Ok(())
+            }
+        };
+        positive("--samples", self.samples, "mask per row")?;
+        positive("--draws", self.draws, "draw per mask")?;
+        positive("--steps", self.steps, "path point")?;
+        positive("--top-k", self.top_k, "group")?;
+        self.rule.nodes(self.steps)?;
+        crate::profile::validate_alpha(self.alpha)
+    }
+}
+
+/// One masking family's findings for a row (SPEC: `families.deletion`,
+/// `families.replacement`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct MaskingFamily {
+    /// How masked groups were filled.
+    pub fill: String,
+    /// Shapley-value estimate of each group.
+    pub attribution: Vec<f64>,
+    /// Standard error of each estimate (0 when every coalition was evaluated).
+    pub standard_errors: Vec<f64>,
+    /// `v(∅)`: the model's expected score with every group filled.
+    pub expected_value: f64,
+    /// Perturbed inputs behind the estimate.
+    pub perturbed_inputs: usize,
+    /// Fraction of them off-manifold.
+    pub off_manifold_rate: f64,
+    /// Their median `p_combined`.
+    pub median_p: f64,
+    /// Held-out AUC of the classifier two-sample test (null with fewer than 4 inputs).
+    pub detectability_auc: Option<f64>,
+}
+
+/// The interpolation family's findings for a row (SPEC: `families.interpolation`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PathFamily {
+    /// The baseline the path starts from.
+    pub baseline: String,
+    /// The model's score for the target at the baseline.
+    pub prediction_at_baseline: f64,
+    /// Integrated gradients summed within each group.
+    pub attribution: Vec<f64>,
+    /// `|Σ attribution - (f(x) - f(baseline))| / max(|f(x) - f(baseline)|, 1e-12)`.
+    pub completeness_gap: f64,
+    /// Exact or finite-difference gradients.
+    pub gradients: GradientMethod,
+    /// Path points.
+    pub perturbed_inputs: usize,
+    /// Fraction of path points off-manifold.
+    pub off_manifold_rate: f64,
+    /// Median `p_combined` of the path points.
+    pub median_p: f64,
+    /// Held-out AUC of the classifier two-sample test (null with fewer than 4 points).
+    pub detectability_auc: Option<f64>,
+}
+
+/// The three families.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Families {
+    pub deletion: MaskingFamily,
+    pub replacement: MaskingFamily,
+    pub interpolation: PathFamily,
+}
+
+/// Agreement of each pair of families (SPEC: `agreement.A~B`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PairAgreement {
+    #[serde(rename = "deletion~replacement")]
+    pub deletion_replacement: Agreement,
+    #[serde(rename = "deletion~interpolation")]
+    pub deletion_interpolation: Agreement,
+    #[serde(rename = "replacement~interpolation")]
+    pub replacement_interpolation: Agreement,
+}
+
+/// A supplied explanation's agreement with each family (SPEC: `supplied`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SuppliedAgreement {
+    pub deletion: Agreement,
+    pub replacement: Agreement,
+    pub interpolation: Agreement,
+}
+
+/// One audit record (SPEC: `kilter audit`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AuditRecord {
+    pub row: usize,
+    pub target: usize,
+    /// The model's score for `target` on the original input.
+    pub prediction: f64,
+    /// `p_combined` of the original input itself.
+    pub input_p: f64,
+    pub families: Families,
+    pub agreement: PairAgreement,
+    /// With `--explanations` only.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub supplied: Option<SuppliedAgreement>,
+    /// The normalised evidence the reliability is computed from.
+    pub evidence: reliability::Evidence,
+    pub reliability: f64,
+    pub verdict: Verdict,
+    pub reasons: Vec<String>,
+}
+
+/// Everything needed to audit rows: the profile, the model, the groups and the families.
+pub struct Auditor<'a> {
+    profile: &'a Profile,
+    model: &'a dyn Model,
+    groups: Groups,
+    settings: AuditSettings,
+    deletion: Deletion,
+    replacement: Box<dyn PerturbationFamily>,
+    baseline: Baseline,
+    differences: FiniteDifference,
+}
+
+/// Purposes of the per-row random streams.
+#[derive(Clone, Copy)]
+enum Stream {
+    Design = 0,
+    Deletion = 1,
+    Replacement = 2,
+    DetectDeletion = 3,
+    DetectReplacement = 4,
+    DetectInterpolation = 5,
+}
+
+impl<'a> Auditor<'a> {
+    /// Prepares an audit; checks the model's width against the profile's features.
+    pub fn new(
+        profile: &'a Profile,
+        model: &'a dyn Model,
+        groups: Groups,
+        settings: AuditSettings,
+    ) -> Result<Self> {
+        settings.validate()?;
+        let d = profile.feature_names().len();
+        if let Some(width) = model.input_dim() {
+            if width != d {
+                return Err(Error::ModelInputWidth {
+                    model: model.describe(),
+                    expected: d,
+                    found: width,
+                });
+            }
+        }
+        if groups.features() != d {
+            return Err(Error::InvalidSetting {
+                flag: "--groups",
+                value: format!("groups over {} features", groups.features()),
+                expected: format!("groups over the profile's {d} features"),
+            });
+        }
+        let reference = profile.feature_distribution();
+        let deletion = Deletion::new(settings.fill, reference.location());
+        let rows = Arc::new(reference.rows().to_owned());
+        let replacement: Box<dyn PerturbationFamily> = match settings.sampler {
+            Sampler::Gaussian => Box::new(ConditionalGaussian::new(
+                reference.location().clone(),
+                reference.covariance().clone(),
+                settings.draws,
+            )),
+            Sampler::Neighbours => {
+                Box::new(NearestRows::new(rows, reference.scale(), settings.draws))
+            }
+            Sampler::Marginal => Box::new(MarginalRows::new(rows, settings.draws)),
+        };
+        let baseline = Baseline::new(settings.baseline.clone(), reference);
+        let differences = FiniteDifference::new(&profile.feature_spread(), model.precision());
+        Ok(Auditor {
+            profile,
+            model,
+            groups,
+            settings,
+            deletion,
+            replacement,
+            baseline,
+            differences,
+        })
+    }
+
+    /// The groups (players) of every attribution.
+    pub fn groups(&self) -> &Groups {
+        &self.groups
+    }
+
+    /// The settings.
+    pub fn settings(&self) -> &AuditSettings {
+        &self.settings
+    }
+
+    /// Description of the deletion fill.
+    pub fn deletion_fill(&self) -> String {
+        self.deletion.inputs_phrase()
+    }
+
+    fn stream(&self, row: usize, purpose: Stream) -> ChaCha8Rng {
+        let mut rng = ChaCha8Rng::seed_from_u64(self.settings.seed);
+        rng.set_stream(row as u64 * 8 + purpose as u64);
+        rng
+    }
+
+    /// Audits one input row; `supplied` is the user's attribution for it, one per group.
+    pub fn audit_row(
+        &self,
+        row: usize,
+        input: ArrayView1<'_, f64>,
+        supplied: Option<&[f64]>,
+    ) -> Result<AuditRecord> {
+        let m = self.groups.len();
+        let original = self.model.predict(input.insert_axis(Axis(0)))?;
+        let target = match self.settings.target {
+            Some(t) => t,
+            None => argmax(original.row(0)),
+        };
+        check_target(&original, target)?;
+        let prediction = original[[0, target]];
+
+        let design = CoalitionDesign::shapley_kernel(
+            m,
+            self.settings.samples,
+            &mut self.stream(row, Stream::Design),
+        );
+        let deleted = evaluate_design(
+            self.model,
+            &self.deletion,
+            input,
+            &self.groups,
+            &design,
+            target,
+            prediction,
+            &mut self.stream(row, Stream::Deletion),
+        )?;
+        let replaced = evaluate_design(
+            self.model,
+            self.replacement.as_ref(),
+            input,
+            &self.groups,
+            &design,
+            target,
+            prediction,
+            &mut self.stream(row, Stream::Replacement),
+        )?;
+        let baselines = self.baseline.rows_for(input, &self.groups);
+        let path = integrated_gradients(
+            self.model,
+            &self.differences,
+            input,
+            baselines.view(),
+            target,
+            self.settings.rule,
+            self.settings.steps,
+        )?;
+        let path_attribution = self
+            .groups
+            .sum_within(path.per_feature.as_slice().expect("contiguous"));
+
+        // Off-manifold scores of everything, in one batch: input, deletion, replacement, path.
+        let all = concatenate![
+            Axis(0),
+            input.insert_axis(Axis(0)),
+            deleted.inputs.view(),
+            replaced.inputs.view(),
+            path.path.view()
+        ];
+        let embedded = self.profile.embed(all.view())?;
+        let scores = self.profile.score_embedded(embedded.view())?;
+        let p = scores.p_combined;
+        let (nd, nr) = (deleted.inputs.nrows(), replaced.inputs.nrows());
+        let spans = [
+            (1, 1 + nd),
+            (1 + nd, 1 + nd + nr),
+            (1 + nd + nr, all.nrows()),
+        ];
+        let reference = self.profile.index().rows();
+        let detect = |span: (usize, usize), purpose: Stream| {
+            detectability_auc(
+                embedded.slice(ndarray::s![span.0..span.1, ..]),
+                reference,
+                &mut self.stream(row, purpose),
+            )
+        };
+        let alpha = self.settings.alpha;
+        let off = |span: (usize, usize)| {
+            off_manifold(&p.as_slice().expect("contiguous")[span.0..span.1], alpha)
+        };
+
+        let masking = |game: &MaskedGame, fill: String, span, purpose| {
+            let (rate, median) = off(span);
+            MaskingFamily {
+                fill,
+                attribution: game.estimate.values.clone(),
+                standard_errors: game.estimate.standard_errors.clone(),
+                expected_value: game.empty,
+                perturbed_inputs: game.inputs.nrows(),
+                off_manifold_rate: rate,
+                median_p: median,
+                detectability_auc: detect(span, purpose),
+            }
+        };
+        let deletion = masking(
+            &deleted,
+            self.deletion.describe(),
+            spans[0],
+            Stream::DetectDeletion,
+        );
+        let replacement = masking(
+            &replaced,
+            self.replacement.describe(),
+            spans[1],
+            Stream::DetectReplacement,
+        );
+        let (path_rate, path_median) = off(spans[2]);
+        let interpolation = PathFamily {
+            baseline: self.baseline.name(),
+            prediction_at_baseline: path.at_baselines[0],
+            attribution: path_attribution,
+            completeness_gap: path.completeness_gap,
+            gradients: path.gradients,
+            perturbed_inputs: path.path.nrows(),
+            off_manifold_rate: path_rate,
+            median_p: path_median,
+            detectability_auc: detect(spans[2], Stream::DetectInterpolation),
+        };
+
+        let k = self.settings.top_k.min(m.saturating_sub(1).max(1));
+        let agree = |a: &[f64], b: &[f64]| Agreement::between(a, b, k);
+        let agreement = PairAgreement {
+            deletion_replacement: agree(&deletion.attribution, &replacement.attribution),
+            deletion_interpolation: agree(&deletion.attribution, &interpolation.attribution),
+            replacement_interpolation: agree(&replacement.attribution, &interpolation.attribution),
+        };
+        let supplied = match supplied {
+            None => None,
+            Some(s) => {
+                if s.len() != m {
+                    return Err(Error::InvalidSetting {
+                        flag: "--explanations",
+                        value: format!("{} values for row {}", s.len(), row + 1),
+                        expected: format!("one value per group ({m})"),
+                    });
+                }
+                Some(SuppliedAgreement {
+                    deletion: agree(s, &deletion.attribution),
+                    replacement: agree(s, &replacement.attribution),
+                    interpolation: agree(s, &interpolation.attribution),
+                })
+            }
+        };
+        let answer_gap = answer_gap(&deleted, &replaced);
+        let families = Families {
+            deletion,
+            replacement,
+            interpolation,
+        };
+        let assessment = reliability::assess(&reliability::Findings {
+            families: &families,
+            agreement: &agreement,
+            supplied: supplied.as_ref(),
+            answer_gap,
+            input_p: p[0],
+            alpha,
+            top_k: k,
+            group_names: self.groups.names(),
+            deletion_inputs: self.deletion.inputs_phrase(),
+            p_floor: self.profile.smallest_p_combined(),
+            steps: self.settings.steps,
+        });
+        Ok(AuditRecord {
+            row,
+            target,
+            prediction,
+            input_p: p[0],
+            families,
+            agreement,
+            supplied,
+            evidence: assessment.evidence,
+            reliability: assessment.reliability,
+            verdict: assessment.verdict,
+            reasons: assessment.reasons,
+        })
+    }
+}
+
+/// Index of the largest value (the first of equals).
+fn argmax(values: ArrayView1<'_, f64>) -> usize {
+    values
+        .iter()
+        .enumerate()
+        .fold((0, f64::NEG_INFINITY), |best, (i, &v)| {
+            if v > best.1 {
+                (i, v)
+            } else {
+                best
+            }
+        })
+        .0
+}
+
+/// Fraction below `alpha` and median of p-values.
+fn off_manifold(p: &[f64], alpha: f64) -> (f64, f64) {
+    if p.is_empty() {
+        return (0.0, 1.0);
+    }
+    let rate = p.iter().filter(|&&v| v < alpha).count() as f64 / p.len() as f64;
+    let mut sorted = p.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    let n = sorted.len();
+    let median = if n % 2 == 1 {
+        sorted[n / 2]
+    } else {
+        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
+    };
+    (rate, median)
+}
+
+/// How differently the model answers the same masks under deletion and replacement: the
+/// mean absolute difference of `v(S)` over the design (the empty coalition included),
+/// relative to the span of the replacement game (the largest of `|f(x) - v(∅)|` under
+/// either fill and the range of the replacement values); capped at 1.
+fn answer_gap(deleted: &MaskedGame, replaced: &MaskedGame) -> f64 {
+    let diffs: Vec<f64> = deleted
+        .values
+        .iter()
+        .zip(&replaced.values)
+        .map(|(a, b)| (a - b).abs())
+        .chain(std::iter::once((deleted.empty - replaced.empty).abs()))
+        .collect();
+    let (low, high) = replaced
+        .values
+        .iter()
+        .chain([replaced.empty, replaced.full].iter())
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
+            (l.min(v), h.max(v))
+        });
+    let span = (deleted.full - deleted.empty)
+        .abs()
+        .max((replaced.full - replaced.empty).abs())
+        .max(high - low)
+        .max(1e-12);
+    let mean = diffs.iter().sum::<f64>() / diffs.len() as f64;
+    (mean / span).min(1.0)
+}
+
+/// Reads supplied explanations: one row per input row, one column per group.
+pub fn check_supplied(
+    explanations: &Array2<f64>,
+    rows: usize,
+    groups: usize,
+    path: &std::path::Path,
+) -> Result<()> {
+    if explanations.nrows() != rows || explanations.ncols() != groups {
+        return Err(Error::InputMismatch {
+            path: path.to_path_buf(),
+            detail: format!(
+                "holds {} rows of {} values; the audit needs one row per input row ({rows}) and one column per group ({groups})",
+                explanations.nrows(),
+                explanations.ncols()
+            ),
+        });
+    }
+    Ok(())
+}

@@ -1,0 +1,326 @@
+//! The reliability score: how much of a row's explanation survives the on-manifold
+//! evidence, with one plain sentence per finding that lowered it.
+//!
+//! The replacement family is the on-manifold evidence: its masked groups are drawn from
+//! the data given the kept ones, so its inputs look like data. A family whose inputs leave
+//! the manifold is penalised in proportion to how far they leave it (its *severity*) times
+//! how much its attribution disagrees with replacement: leaving the manifold while
+//! agreeing costs nothing. With `α` the significance level, `r` an off-manifold rate,
+//! `m` a median p-value, `A` a detectability AUC (F a family, R replacement):
+//!
+//! ```text
+//! excess(r)     = clamp((r - α) / (1 - α), 0, 1)
+//! severity_F    = max( excess(r_F),
+//!                      clamp(2 (A_F - max(A_R, ½)), 0, 1),
+//!                      clamp(1 - m_F / max(m_R, α), 0, 1) )
+//! disagreement  = ((1 - ρ)/2 + (1 - top-k overlap) + (1 - sign agreement)) / 3
+//!
+//! P_deletion      = severity_D · disagreement(D, R)
+//! P_answers       = ½ · severity_D · answer_gap
+//! P_interpolation = severity_I · disagreement(I, R)
+//! P_completeness  = ½ · clamp((gap - 0.01) / 0.24, 0, 1)
+//! P_replacement   = ½ · excess(r_R)
+//! P_uncertainty   = ½ · clamp((u - 0.1) / 0.4, 0, 1)
+//! P_supplied      = disagreement(supplied, R)                (with --explanations)
+//!
+//! reliability = Π (1 - P)        reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable
+//! ```
+//!
+//! `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
+//! game's span; `u` the larger relative standard error ‖se‖/‖φ‖ of the two masking
+//! estimates; `gap` the interpolation completeness gap. Every term is monotone in its
+//! evidence and each P lies in [0, 1], so the score lies in [0, 1].
+
+use serde::{Deserialize, Serialize};
+
+use super::{Agreement, Families, PairAgreement, SuppliedAgreement};
+
+/// Scores at or above this are `reliable`.
+pub const RELIABLE_FROM: f64 = 0.7;
+/// Scores at or above this (and below [`RELIABLE_FROM`]) are `doubtful`.
+pub const DOUBTFUL_FROM: f64 = 0.4;
+/// Penalties below this do not get a reason of their own.
+const REASON_FROM: f64 = 0.02;
+
+/// The verdict on a row's explanation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Verdict {
+    Reliable,
+    Doubtful,
+    Unreliable,
+}
+
+impl Verdict {
+    /// The verdict for a score.
+    pub fn for_score(score: f64) -> Verdict {
+        if score >= RELIABLE_FROM {
+            Verdict::Reliable
+        } else if score >= DOUBTFUL_FROM {
+            Verdict::Doubtful
+        } else {
+            Verdict::Unreliable
+        }
+    }
+
+    /// Lower-case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Verdict::Reliable => "reliable",
+            Verdict::Doubtful => "doubtful",
+            Verdict::Unreliable => "unreliable",
+        }
+    }
+}
+
+/// The normalised evidence and each penalty (record field `evidence`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Evidence {
+    pub deletion_severity: f64,
+    pub interpolation_severity: f64,
+    pub deletion_disagreement: f64,
+    pub interpolation_disagreement: f64,
+    pub answer_gap: f64,
+    pub uncertainty: f64,
+    pub deletion_penalty: f64,
+    pub answer_penalty: f64,
+    pub interpolation_penalty: f64,
+    pub completeness_penalty: f64,
+    pub replacement_penalty: f64,
+    pub uncertainty_penalty: f64,
+    /// With `--explanations` only; null otherwise.
+    pub supplied_penalty: Option<f64>,
+}
+
+/// What the assessment reads.
+pub struct Findings<'a> {
+    pub families: &'a Families,
+    pub agreement: &'a PairAgreement,
+    pub supplied: Option<&'a SuppliedAgreement>,
+    pub answer_gap: f64,
+    pub input_p: f64,
+    pub alpha: f64,
+    pub top_k: usize,
+    pub group_names: &'a [String],
+    pub steps: usize,
+    /// "zero-filled inputs" and the like.
+    pub deletion_inputs: String,
+    /// The smallest `p_combined` the profile can give.
+    pub p_floor: f64,
+}
+
+/// The score, its verdict, the reasons and the evidence behind them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Assessment {
+    pub reliability: f64,
+    pub verdict: Verdict,
+    pub reasons: Vec<String>,
+    pub evidence: Evidence,
+}
+
+fn excess(rate: f64, alpha: f64) -> f64 {
+    ((rate - alpha) / (1.0 - alpha)).clamp(0.0, 1.0)
+}
+
+fn severity(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> f64 {
+    let r = &findings.families.replacement;
+    let detect = match auc {
+        Some(a) => (2.0 * (a - r.detectability_auc.unwrap_or(0.5).max(0.5))).clamp(0.0, 1.0),
+        None => 0.0,
+    };
+    let typical = (1.0 - median_p / r.median_p.max(findings.alpha)).clamp(0.0, 1.0);
+    excess(rate, findings.alpha).max(detect).max(typical)
+}
+
+fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
+    let size = values.iter().map(|v| v * v).sum::<f64>().sqrt();
+    let noise = errors.iter().map(|e| e * e).sum::<f64>().sqrt();
+    if size > 0.0 {
+        noise / size
+    } else if noise > 0.0 {
+        1.0
+    } else {
+        0.0
+    }
+}
+
+fn percent(v: f64) -> String {
+    format!("{:.0}%", 100.0 * v)
+}
+
+fn top_names(values: &[f64], k: usize, names: &[String]) -> String {
+    super::agreement::top_k(values, k)
+        .iter()
+        .map(|&g| names[g].as_str())
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// Weighs the evidence of one row.
+pub fn assess(findings: &Findings<'_>) -> Assessment {
+    let f = findings.families;
+    let (d, r, i) = (&f.deletion, &f.replacement, &f.interpolation);
+    let alpha = findings.alpha;
+    let k = findings.top_k;
+    let names = findings.group_names;
+
+    let deletion_severity = severity(
+        d.off_manifold_rate,
+        d.median_p,
+        d.detectability_auc,
+        findings,
+    );
+    let interpolation_severity = severity(
+        i.off_manifold_rate,
+        i.median_p,
+        i.detectability_auc,
+        findings,
+    );
+    let dr: &Agreement = &findings.agreement.deletion_replacement;
+    let ir: &Agreement = &findings.agreement.replacement_interpolation;
+    let deletion_disagreement = dr.disagreement();
+    let interpolation_disagreement = ir.disagreement();
+    let uncertainty = relative_error(&d.attribution, &d.standard_errors)
+        .max(relative_error(&r.attribution, &r.standard_errors));
+
+    let deletion_penalty = deletion_severity * deletion_disagreement;
+    let answer_penalty = 0.5 * deletion_severity * findings.answer_gap;
+    let interpolation_penalty = interpolation_severity * interpolation_disagreement;
+    let completeness_penalty = 0.5 * ((i.completeness_gap - 0.01) / 0.24).clamp(0.0, 1.0);
+    let replacement_penalty = 0.5 * excess(r.off_manifold_rate, alpha);
+    let uncertainty_penalty = 0.5 * ((uncertainty - 0.1) / 0.4).clamp(0.0, 1.0);
+    let supplied_penalty = findings.supplied.map(|s| s.replacement.disagreement());
+
+    let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
+        let mut text = format!(
+            "{} of the {noun} fall outside the reference data (p < {alpha}), their median p is \
+             {median_p:.3} against {:.3} for inputs drawn from the data",
+            percent(rate),
+            r.median_p
+        );
+        if let Some(a) = auc {
+            text.push_str(&format!(
+                ", and a classifier tells them from reference rows with AUC {a:.2}"
+            ));
+        }
+        if rate == 0.0 && findings.p_floor >= alpha {
+            text.push_str(&format!(
+                " (no input can reach p < {alpha} against this profile: its smallest p is \
+                 {:.3}; fit with more calibration rows)",
+                findings.p_floor
+            ));
+        }
+        text
+    };
+    let mut reasons: Vec<(f64, String)> = Vec::new();
+    reasons.push((
+        deletion_penalty,
+        format!(
+            "{}; their attribution disagrees with the one from inputs drawn from the data \
+             (Spearman {:.2}; top {k}: {} under deletion, {} under replacement)",
+            unlike(
+                &findings.deletion_inputs,
+                d.off_manifold_rate,
+                d.median_p,
+                d.detectability_auc
+            ),
+            dr.spearman,
+            top_names(&d.attribution, k, names),
+            top_names(&r.attribution, k, names),
+        ),
+    ));
+    reasons.push((
+        answer_penalty,
+        format!(
+            "the model answers the same masks differently on {} than on inputs drawn from \
+             the data (mean gap {} of its span): it reacts to the fill itself",
+            findings.deletion_inputs,
+            percent(findings.answer_gap)
+        ),
+    ));
+    reasons.push((
+        interpolation_penalty,
+        format!(
+            "{}; the path's attribution disagrees with the in-distribution one (Spearman \
+             {:.2}; top {k}: {} on the path, {} under replacement)",
+            unlike(
+                &format!(
+                    "integrated-gradients path points from the {} baseline",
+                    i.baseline
+                ),
+                i.off_manifold_rate,
+                i.median_p,
+                i.detectability_auc
+            ),
+            ir.spearman,
+            top_names(&i.attribution, k, names),
+            top_names(&r.attribution, k, names),
+        ),
+    ));
+    reasons.push((
+        completeness_penalty,
+        format!(
+            "integrated gradients miss completeness by {:.1}% with {} steps; raise --steps \
+             or use --rule gauss-legendre",
+            100.0 * i.completeness_gap,
+            findings.steps
+        ),
+    ));
+    reasons.push((
+        replacement_penalty,
+        format!(
+            "{} of the inputs drawn from the data still fall outside it (the input's own p is \
+             {:.3}): the in-distribution evidence is weak for this row",
+            percent(r.off_manifold_rate),
+            findings.input_p
+        ),
+    ));
+    reasons.push((
+        uncertainty_penalty,
+        format!(
+            "the masking attributions are uncertain (standard errors {} of their size); \
+             raise --samples",
+            percent(uncertainty)
+        ),
+    ));
+    if let (Some(p), Some(s)) = (supplied_penalty, findings.supplied) {
+        reasons.push((
+            p,
+            format!(
+                "the supplied explanation disagrees with the in-distribution attribution \
+                 (Spearman {:.2}, top-{k} overlap {:.2}, signs agree on {})",
+                s.replacement.spearman,
+                s.replacement.top_k_overlap,
+                percent(s.replacement.sign_agreement)
+            ),
+        ));
+    }
+    let reliability = reasons
+        .iter()
+        .map(|(p, _)| 1.0 - p.clamp(0.0, 1.0))
+        .product::<f64>()
+        .clamp(0.0, 1.0);
+    reasons.retain(|(p, _)| *p >= REASON_FROM);
+    reasons.sort_by(|a, b| b.0.total_cmp(&a.0));
+    Assessment {
+        reliability,
+        verdict: Verdict::for_score(reliability),
+        reasons: reasons.into_iter().map(|(_, s)| s).collect(),
+        evidence: Evidence {
+            deletion_severity,
+            interpolation_severity,
+            deletion_disagreement,
+            interpolation_disagreement,
+            answer_gap: findings.answer_gap,
+            uncertainty,
+            deletion_penalty,
+            answer_penalty,
+            interpolation_penalty,
+            completeness_penalty,
+            replacement_penalty,
+            uncertainty_penalty,
+            supplied_penalty,
+        },
+    }
+}

@@ -1,0 +1,106 @@
+//! Evaluating a mask design under one family: the masked inputs, the model's answers and
+//! the Shapley-value estimate from them.
+//!
+//! For coalition S (the kept groups) the value is `v(S) = E[f(x with the groups outside S
+//! filled)]`, estimated by the mean of the family's draws. `v(full) = f(x)`. The empty
+//! coalition anchors the efficiency constraint `Σ φ = f(x) - v(∅)`, so its value gets
+//! [`EMPTY_DRAWS_FACTOR`] times the draws of the other coalitions. Features in no group are
+//! kept in every coalition. Every filled input of the row goes to the model in one call.
+
+use ndarray::{Array2, ArrayView1};
+use rand_chacha::ChaCha8Rng;
+
+use super::PerturbationFamily;
+use crate::attribution::{estimate_shapley, CoalitionDesign, ShapleyEstimate};
+use crate::error::Result;
+use crate::groups::Groups;
+use crate::models::{check_target, Model};
+
+/// The empty coalition's value is the mean over this many times the draws per mask
+/// (for a random fill; a deterministic fill needs one).
+pub const EMPTY_DRAWS_FACTOR: usize = 8;
+
+/// One family's evaluation of a design on one row.
+#[derive(Debug, Clone)]
+pub struct MaskedGame {
+    /// `v(S)` for each coalition of the design.
+    pub values: Vec<f64>,
+    /// `v(∅)`: the model's expected score with every group filled.
+    pub empty: f64,
+    /// `f(x)`.
+    pub full: f64,
+    /// Every filled input, coalition by coalition, the empty coalition's last.
+    pub inputs: Array2<f64>,
+    /// The Shapley-value estimate with standard errors.
+    pub estimate: ShapleyEstimate,
+}
+
+/// Per-feature kept flags of a coalition of groups: features in no group are kept.
+pub fn kept_features(groups: &Groups, coalition: &[bool]) -> Vec<bool> {
+    let mut kept = vec![true; groups.features()];
+    for (g, &keep) in coalition.iter().enumerate() {
+        if !keep {
+            for &i in groups.members(g) {
+                kept[i] = false;
+            }
+        }
+    }
+    kept
+}
+
+/// Evaluates `design` on `input` with `family`'s fill; `full` is f(x) for the target.
+#[allow(clippy::too_many_arguments)]
+pub fn evaluate_design(
+    model: &dyn Model,
+    family: &dyn PerturbationFamily,
+    input: ArrayView1<'_, f64>,
+    groups: &Groups,
+    design: &CoalitionDesign,
+    target: usize,
+    full: f64,
+    rng: &mut ChaCha8Rng,
+) -> Result<MaskedGame> {
+    let d = input.len();
+    let per_mask = family.draws().max(1);
+    let empty_draws = if per_mask == 1 {
+        1
+    } else {
+        per_mask * EMPTY_DRAWS_FACTOR
+    };
+    let coalitions = design.coalitions();
+    let total = coalitions.len() * per_mask + empty_draws;
+    let mut inputs = Array2::<f64>::zeros((total, d));
+    for (k, coalition) in coalitions.iter().enumerate() {
+        let kept = kept_features(groups, coalition);
+        let block = inputs.slice_mut(ndarray::s![k * per_mask..(k + 1) * per_mask, ..]);
+        family.fill(input, &kept, rng, block)?;
+    }
+    let empty_kept = kept_features(groups, &vec![false; groups.len()]);
+    family.fill(
+        input,
+        &empty_kept,
+        rng,
+        inputs.slice_mut(ndarray::s![total - empty_draws.., ..]),
+    )?;
+    let answers = model.predict(inputs.view())?;
+    check_target(&answers, target)?;
+    let scores = answers.column(target);
+    let values: Vec<f64> = scores
+        .slice(ndarray::s![..coalitions.len() * per_mask])
+        .exact_chunks(per_mask)
+        .into_iter()
+        .map(|c| c.mean().expect("at least one draw"))
+        .collect();
+    let empty = scores
+        .slice(ndarray::s![total - empty_draws..])
+        .mean()
+        .expect("at least one draw");
+    let estimate = estimate_shapley(design, &values, empty, full)?;
+    Ok(MaskedGame {
+        values,
+        empty,
+        full,
+        inputs,
+        estimate,
+    })
+}
