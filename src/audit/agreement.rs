@@ -44,14 +44,6 @@ impl Agreement {
             sign_agreement: sign_agreement(a, b),
         }
     }
-
-    /// A disagreement in [0, 1]: the mean of `(1 - ρ)/2`, `1 - top-k overlap` and
-    /// `1 - sign agreement` (README: the reliability formula).
-    pub fn disagreement(&self) -> f64 {
-        (((1.0 - self.spearman) / 2.0) + (1.0 - self.top_k_overlap) + (1.0 - self.sign_agreement))
-            .clamp(0.0, 3.0)
-            / 3.0
-    }
 }
 
 fn is_constant(a: &[f64]) -> bool {

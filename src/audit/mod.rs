@@ -479,7 +479,7 @@ impl<'a> Auditor<'a> {
             deletion_interpolation: agree(&deletion.attribution, &interpolation.attribution),
             replacement_interpolation: agree(&replacement.attribution, &interpolation.attribution),
         };
-        let supplied = match supplied {
+        let supplied_agreement = match supplied {
             None => None,
             Some(s) => {
                 if s.len() != m {
@@ -505,7 +505,8 @@ impl<'a> Auditor<'a> {
         let assessment = reliability::assess(&reliability::Findings {
             families: &families,
             agreement: &agreement,
-            supplied: supplied.as_ref(),
+            supplied: supplied_agreement.as_ref(),
+            supplied_values: supplied,
             answer_gap,
             input_p: p[0],
             alpha,
@@ -522,7 +523,7 @@ impl<'a> Auditor<'a> {
             input_p: p[0],
             families,
             agreement,
-            supplied,
+            supplied: supplied_agreement,
             evidence: assessment.evidence,
             reliability: assessment.reliability,
             verdict: assessment.verdict,

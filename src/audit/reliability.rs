@@ -13,11 +13,12 @@
 //! severity_F    = max( excess(r_F),
 //!                      clamp(2 (A_F - max(A_R, ½)), 0, 1),
 //!                      clamp(1 - m_F / max(m_R, α), 0, 1) )
-//! disagreement  = ((1 - ρ)/2 + (1 - top-k overlap) + (1 - sign agreement)) / 3
+//! L1(a, b)      = Σᵢ max(0, |aᵢ - bᵢ| - 2 √(se_aᵢ² + se_bᵢ²)) / (Σ|aᵢ| + Σ|bᵢ|)
+//! disagreement  = ((1 - ρ)/2 + (1 - top-k overlap) + L1) / 3
 //!
-//! P_deletion      = severity_D · disagreement(D, R)
+//! P_deletion      = severity_D · √disagreement(D, R)
 //! P_answers       = ½ · severity_D · answer_gap
-//! P_interpolation = severity_I · disagreement(I, R)
+//! P_interpolation = severity_I · √disagreement(I, R)
 //! P_completeness  = ½ · clamp((gap - 0.01) / 0.24, 0, 1)
 //! P_replacement   = ½ · excess(r_R)
 //! P_uncertainty   = ½ · clamp((u - 0.1) / 0.4, 0, 1)
@@ -26,7 +27,11 @@
 //! reliability = Π (1 - P)        reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable
 //! ```
 //!
-//! `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
+//! The L1 term is the share of the attributions' mass on which the two differ by more
+//! than twice their joint standard error, so sampling noise alone does not count as
+//! disagreement. The square root makes a moderate disagreement weigh nearly as much as a
+//! complete one when the inputs behind it are far off the manifold: a changed top feature
+//! is already a different explanation. `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
 //! game's span; `u` the larger relative standard error ‖se‖/‖φ‖ of the two masking
 //! estimates; `gap` the interpolation completeness gap. Every term is monotone in its
 //! evidence and each P lies in [0, 1], so the score lies in [0, 1].
@@ -98,6 +103,8 @@ pub struct Findings<'a> {
     pub families: &'a Families,
     pub agreement: &'a PairAgreement,
     pub supplied: Option<&'a SuppliedAgreement>,
+    /// The supplied attribution itself, with `supplied`.
+    pub supplied_values: Option<&'a [f64]>,
     pub answer_gap: f64,
     pub input_p: f64,
     pub alpha: f64,
@@ -145,6 +152,31 @@ fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
     }
 }
 
+/// Disagreement of attribution `a` with the in-distribution attribution `b`, in [0, 1]
+/// (module docs).
+pub fn disagreement(
+    agreement: &Agreement,
+    a: &[f64],
+    se_a: &[f64],
+    b: &[f64],
+    se_b: &[f64],
+) -> f64 {
+    let mass: f64 = a.iter().chain(b).map(|v| v.abs()).sum();
+    let l1 = if mass > 0.0 {
+        (0..a.len())
+            .map(|g| {
+                let noise = 2.0 * (se_a[g] * se_a[g] + se_b[g] * se_b[g]).sqrt();
+                ((a[g] - b[g]).abs() - noise).max(0.0)
+            })
+            .sum::<f64>()
+            / mass
+    } else {
+        0.0
+    };
+    (((1.0 - agreement.spearman) / 2.0 + (1.0 - agreement.top_k_overlap) + l1) / 3.0)
+        .clamp(0.0, 1.0)
+}
+
 fn percent(v: f64) -> String {
     format!("{:.0}%", 100.0 * v)
 }
@@ -179,18 +211,40 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
     );
     let dr: &Agreement = &findings.agreement.deletion_replacement;
     let ir: &Agreement = &findings.agreement.replacement_interpolation;
-    let deletion_disagreement = dr.disagreement();
-    let interpolation_disagreement = ir.disagreement();
+    let deletion_disagreement = disagreement(
+        dr,
+        &d.attribution,
+        &d.standard_errors,
+        &r.attribution,
+        &r.standard_errors,
+    );
+    let no_errors = vec![0.0; i.attribution.len()];
+    let interpolation_disagreement = disagreement(
+        ir,
+        &i.attribution,
+        &no_errors,
+        &r.attribution,
+        &r.standard_errors,
+    );
     let uncertainty = relative_error(&d.attribution, &d.standard_errors)
         .max(relative_error(&r.attribution, &r.standard_errors));
 
-    let deletion_penalty = deletion_severity * deletion_disagreement;
+    let deletion_penalty = deletion_severity * deletion_disagreement.sqrt();
     let answer_penalty = 0.5 * deletion_severity * findings.answer_gap;
-    let interpolation_penalty = interpolation_severity * interpolation_disagreement;
+    let interpolation_penalty = interpolation_severity * interpolation_disagreement.sqrt();
     let completeness_penalty = 0.5 * ((i.completeness_gap - 0.01) / 0.24).clamp(0.0, 1.0);
     let replacement_penalty = 0.5 * excess(r.off_manifold_rate, alpha);
     let uncertainty_penalty = 0.5 * ((uncertainty - 0.1) / 0.4).clamp(0.0, 1.0);
-    let supplied_penalty = findings.supplied.map(|s| s.replacement.disagreement());
+    let supplied_penalty = match (findings.supplied, findings.supplied_values) {
+        (Some(agreement), Some(values)) => Some(disagreement(
+            &agreement.replacement,
+            values,
+            &no_errors,
+            &r.attribution,
+            &r.standard_errors,
+        )),
+        _ => None,
+    };
 
     let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
         let mut text = format!(

@@ -5,6 +5,7 @@
 mod harness;
 mod tolerance;
 
+mod audit;
 mod calibration;
 mod encoder;
 mod families;
