@@ -15,4 +15,4 @@ pub mod shapley;
 pub use coalitions::CoalitionDesign;
 pub use integrated_gradients::{integrated_gradients, PathAttribution};
 pub use quadrature::QuadratureRule;
-pub use shapley::{estimate_shapley, ShapleyEstimate};
+pub use shapley::{estimate_shapley, estimate_shapley_with_noise, ShapleyEstimate, ValueNoise};

@@ -25,6 +25,15 @@ pub struct ShapleyEstimate {
     pub standard_errors: Vec<f64>,
 }
 
+/// The sampling variance of each coalition's value, when the values are means of random
+/// draws (replacement): `values[k]` has variance `coalitions[k]`, the empty coalition's
+/// value `empty`. The draws of different coalitions are independent.
+#[derive(Debug, Clone, Copy)]
+pub struct ValueNoise<'a> {
+    pub coalitions: &'a [f64],
+    pub empty: f64,
+}
+
 /// Estimates Shapley values from the value of every coalition in `design` (`values[k]`
 /// for coalition k), the value of the empty coalition and of the full one.
 pub fn estimate_shapley(
@@ -32,6 +41,22 @@ pub fn estimate_shapley(
     values: &[f64],
     empty: f64,
     full: f64,
+) -> Result<ShapleyEstimate> {
+    estimate_shapley_with_noise(design, values, empty, full, None)
+}
+
+/// As [`estimate_shapley`], with the values' own sampling variances. The estimate is
+/// linear in the values, so independent variances propagate exactly:
+/// `Var φ = Σ_k (∂φ/∂v_k)² Var v_k + (∂φ/∂v_∅)² Var v_∅`. An enumerated design then
+/// reports that propagated error (it has no coalition-sampling error); a sampled design
+/// reports the larger of it and the least-squares error, whose residuals already hold
+/// the values' noise.
+pub fn estimate_shapley_with_noise(
+    design: &CoalitionDesign,
+    values: &[f64],
+    empty: f64,
+    full: f64,
+    noise: Option<ValueNoise<'_>>,
 ) -> Result<ShapleyEstimate> {
     let m = design.groups();
     let delta = full - empty;
@@ -85,8 +110,33 @@ pub fn estimate_shapley(
     let mut phi: Vec<f64> = beta.to_vec();
     phi.push(delta - beta.sum());
 
+    let propagated = noise.map(|noise| {
+        // inv = (XᵀWX)⁻¹ = R Rᵀ with R = inverse_rows; β = inv Σ_k x_k w_k y_k.
+        let inv = inverse_rows.dot(&inverse_rows.t());
+        let mut var = vec![0.0; m];
+        // y_k = v_k - v_∅ (1 - z_kM) - z_kM f, so ∂β/∂v_∅ = -Σ_k (1 - z_kM) inv x_k w_k.
+        let mut d_empty = Array1::<f64>::zeros(p);
+        for k in 0..n {
+            let x =
+                Array1::from_iter((0..p).map(|i| f64::from(u8::from(coalitions[k][i])) - last(k)));
+            let g = inv.dot(&x) * weights[k];
+            let total: f64 = g.sum();
+            for i in 0..p {
+                var[i] += g[i] * g[i] * noise.coalitions[k];
+            }
+            // φ_M = f - v_∅ - Σβ: its derivative in v_k is -Σ_i ∂β_i/∂v_k.
+            var[m - 1] += total * total * noise.coalitions[k];
+            d_empty.scaled_add(-(1.0 - last(k)), &g);
+        }
+        for i in 0..p {
+            var[i] += d_empty[i] * d_empty[i] * noise.empty;
+        }
+        let d_last = -1.0 - d_empty.sum();
+        var[m - 1] += d_last * d_last * noise.empty;
+        var.into_iter().map(f64::sqrt).collect::<Vec<f64>>()
+    });
     let standard_errors = if design.is_exhaustive() {
-        vec![0.0; m]
+        propagated.unwrap_or_else(|| vec![0.0; m])
     } else {
         let mut rss = 0.0;
         for k in 0..n {
@@ -103,7 +153,10 @@ pub fn estimate_shapley(
         // Var(φ_M) = Var(Σβ) = 1ᵀ inv 1 = ‖Σ_j y_j‖².
         let total = inverse_rows.sum_axis(ndarray::Axis(0));
         se.push((sigma2 * total.dot(&total)).sqrt());
-        se
+        match propagated {
+            Some(p) => se.iter().zip(p).map(|(a, b)| a.max(b)).collect(),
+            None => se,
+        }
     };
     Ok(ShapleyEstimate {
         values: phi,

@@ -165,6 +165,10 @@ pub struct MaskingFamily {
     pub standard_errors: Vec<f64>,
     /// `v(∅)`: the model's expected score with every group filled.
     pub expected_value: f64,
+    /// Masks (coalitions) evaluated, besides the full one.
+    pub masks: usize,
+    /// Whether every coalition was evaluated (no coalition-sampling error).
+    pub exhaustive: bool,
     /// Perturbed inputs behind the estimate.
     pub perturbed_inputs: usize,
     /// Fraction of them off-manifold.
@@ -441,6 +445,8 @@ impl<'a> Auditor<'a> {
                 attribution: game.estimate.values.clone(),
                 standard_errors: game.estimate.standard_errors.clone(),
                 expected_value: game.empty,
+                masks: game.values.len() + 1,
+                exhaustive: design.is_exhaustive(),
                 perturbed_inputs: game.inputs.nrows(),
                 off_manifold_rate: rate,
                 median_p: median,

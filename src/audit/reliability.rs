@@ -13,25 +13,29 @@
 //! severity_F    = max( excess(r_F),
 //!                      clamp(2 (A_F - max(A_R, ½)), 0, 1),
 //!                      clamp(1 - m_F / max(m_R, α), 0, 1) )
-//! L1(a, b)      = Σᵢ max(0, |aᵢ - bᵢ| - 2 √(se_aᵢ² + se_bᵢ²)) / (Σ|aᵢ| + Σ|bᵢ|)
-//! disagreement  = ((1 - ρ)/2 + (1 - top-k overlap) + L1) / 3
+//! â = a / ‖a‖₁, ŝe_a = se_a / ‖a‖₁ (likewise for b)
+//! disagreement(a, b) = ½ Σᵢ max(0, |âᵢ - b̂ᵢ| - 2 √(ŝe_aᵢ² + ŝe_bᵢ²))
 //!
 //! P_deletion      = severity_D · √disagreement(D, R)
 //! P_answers       = ½ · severity_D · answer_gap
 //! P_interpolation = severity_I · √disagreement(I, R)
 //! P_completeness  = ½ · clamp((gap - 0.01) / 0.24, 0, 1)
 //! P_replacement   = ½ · excess(r_R)
-//! P_uncertainty   = ½ · clamp((u - 0.1) / 0.4, 0, 1)
+//! P_uncertainty   = ½ · clamp((u - 0.25) / 0.75, 0, 1)
 //! P_supplied      = disagreement(supplied, R)                (with --explanations)
 //!
 //! reliability = Π (1 - P)        reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable
 //! ```
 //!
-//! The L1 term is the share of the attributions' mass on which the two differ by more
-//! than twice their joint standard error, so sampling noise alone does not count as
-//! disagreement. The square root makes a moderate disagreement weigh nearly as much as a
-//! complete one when the inputs behind it are far off the manifold: a changed top feature
-//! is already a different explanation. `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
+//! The disagreement is the share of normalised attribution mass that moves between the
+//! two (0: the same explanation up to scale; 1: opposite signs or disjoint supports),
+//! counting only differences beyond twice their joint standard error, so sampling noise
+//! alone is not disagreement; normalising makes it scale-free, so supplied explanations
+//! in other units (gradients, surrogate coefficients) compare fairly. The square root
+//! makes a moderate disagreement weigh nearly as much as a complete one when the inputs
+//! behind it are far off the manifold: a changed top feature is already a different
+//! explanation. The rank statistics of `agreement` are reported, not scored: they swing
+//! on near-ties that sampling noise decides. `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
 //! game's span; `u` the larger relative standard error ‖se‖/‖φ‖ of the two masking
 //! estimates; `gap` the interpolation completeness gap. Every term is monotone in its
 //! evidence and each P lies in [0, 1], so the score lies in [0, 1].
@@ -152,29 +156,24 @@ fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
     }
 }
 
-/// Disagreement of attribution `a` with the in-distribution attribution `b`, in [0, 1]
-/// (module docs).
-pub fn disagreement(
-    agreement: &Agreement,
-    a: &[f64],
-    se_a: &[f64],
-    b: &[f64],
-    se_b: &[f64],
-) -> f64 {
-    let mass: f64 = a.iter().chain(b).map(|v| v.abs()).sum();
-    let l1 = if mass > 0.0 {
-        (0..a.len())
-            .map(|g| {
-                let noise = 2.0 * (se_a[g] * se_a[g] + se_b[g] * se_b[g]).sqrt();
-                ((a[g] - b[g]).abs() - noise).max(0.0)
-            })
-            .sum::<f64>()
-            / mass
-    } else {
-        0.0
-    };
-    (((1.0 - agreement.spearman) / 2.0 + (1.0 - agreement.top_k_overlap) + l1) / 3.0)
-        .clamp(0.0, 1.0)
+/// Disagreement of attribution `a` with the in-distribution attribution `b`, in [0, 1]:
+/// the share of normalised attribution mass that moves between them beyond their joint
+/// sampling noise (module docs).
+pub fn disagreement(a: &[f64], se_a: &[f64], b: &[f64], se_b: &[f64]) -> f64 {
+    let norm_a: f64 = a.iter().map(|v| v.abs()).sum();
+    let norm_b: f64 = b.iter().map(|v| v.abs()).sum();
+    match (norm_a > 0.0, norm_b > 0.0) {
+        (false, false) => return 0.0,
+        (true, false) | (false, true) => return 1.0,
+        (true, true) => {}
+    }
+    let moved: f64 = (0..a.len())
+        .map(|g| {
+            let noise = 2.0 * ((se_a[g] / norm_a).powi(2) + (se_b[g] / norm_b).powi(2)).sqrt();
+            ((a[g] / norm_a - b[g] / norm_b).abs() - noise).max(0.0)
+        })
+        .sum();
+    (moved / 2.0).clamp(0.0, 1.0)
 }
 
 fn percent(v: f64) -> String {
@@ -212,7 +211,6 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
     let dr: &Agreement = &findings.agreement.deletion_replacement;
     let ir: &Agreement = &findings.agreement.replacement_interpolation;
     let deletion_disagreement = disagreement(
-        dr,
         &d.attribution,
         &d.standard_errors,
         &r.attribution,
@@ -220,7 +218,6 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
     );
     let no_errors = vec![0.0; i.attribution.len()];
     let interpolation_disagreement = disagreement(
-        ir,
         &i.attribution,
         &no_errors,
         &r.attribution,
@@ -234,17 +231,10 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
     let interpolation_penalty = interpolation_severity * interpolation_disagreement.sqrt();
     let completeness_penalty = 0.5 * ((i.completeness_gap - 0.01) / 0.24).clamp(0.0, 1.0);
     let replacement_penalty = 0.5 * excess(r.off_manifold_rate, alpha);
-    let uncertainty_penalty = 0.5 * ((uncertainty - 0.1) / 0.4).clamp(0.0, 1.0);
-    let supplied_penalty = match (findings.supplied, findings.supplied_values) {
-        (Some(agreement), Some(values)) => Some(disagreement(
-            &agreement.replacement,
-            values,
-            &no_errors,
-            &r.attribution,
-            &r.standard_errors,
-        )),
-        _ => None,
-    };
+    let uncertainty_penalty = 0.5 * ((uncertainty - 0.25) / 0.75).clamp(0.0, 1.0);
+    let supplied_penalty = findings
+        .supplied_values
+        .map(|values| disagreement(values, &no_errors, &r.attribution, &r.standard_errors));
 
     let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
         let mut text = format!(
@@ -334,8 +324,13 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
         uncertainty_penalty,
         format!(
             "the masking attributions are uncertain (standard errors {} of their size); \
-             raise --samples",
-            percent(uncertainty)
+             raise {}",
+            percent(uncertainty),
+            if d.exhaustive && r.exhaustive {
+                "--draws (every mask is already evaluated)"
+            } else {
+                "--samples and --draws"
+            }
         ),
     ));
     if let (Some(p), Some(s)) = (supplied_penalty, findings.supplied) {

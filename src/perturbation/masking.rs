@@ -6,12 +6,20 @@
 //! coalition anchors the efficiency constraint `Σ φ = f(x) - v(∅)`, so its value gets
 //! [`EMPTY_DRAWS_FACTOR`] times the draws of the other coalitions. Features in no group are
 //! kept in every coalition. Every filled input of the row goes to the model in one call.
+//!
+//! Each mask's draws are independent of the other masks'. The variance of each `v(S)` is
+//! estimated from its own draws (from the means of antithetic pairs, for a family that
+//! draws in pairs) and propagated into the Shapley values' standard errors
+//! ([`estimate_shapley_with_noise`]); summed over many masks, those rough per-mask
+//! estimates give a steady total.
 
 use ndarray::{Array2, ArrayView1};
 use rand_chacha::ChaCha8Rng;
 
 use super::PerturbationFamily;
-use crate::attribution::{estimate_shapley, CoalitionDesign, ShapleyEstimate};
+use crate::attribution::{
+    estimate_shapley_with_noise, CoalitionDesign, ShapleyEstimate, ValueNoise,
+};
 use crate::error::Result;
 use crate::groups::Groups;
 use crate::models::{check_target, Model};
@@ -85,17 +93,24 @@ pub fn evaluate_design(
     let answers = model.predict(inputs.view())?;
     check_target(&answers, target)?;
     let scores = answers.column(target);
-    let values: Vec<f64> = scores
-        .slice(ndarray::s![..coalitions.len() * per_mask])
-        .exact_chunks(per_mask)
-        .into_iter()
-        .map(|c| c.mean().expect("at least one draw"))
-        .collect();
-    let empty = scores
-        .slice(ndarray::s![total - empty_draws..])
-        .mean()
-        .expect("at least one draw");
-    let estimate = estimate_shapley(design, &values, empty, full)?;
+    let paired = family.paired_draws();
+    let (values, variances): (Vec<f64>, Vec<f64>) = (0..coalitions.len())
+        .map(|k| {
+            let draws = scores
+                .slice(ndarray::s![k * per_mask..(k + 1) * per_mask])
+                .to_vec();
+            mean_and_variance_of_mean(&draws, paired)
+        })
+        .unzip();
+    let (empty, empty_variance) = mean_and_variance_of_mean(
+        &scores.slice(ndarray::s![total - empty_draws..]).to_vec(),
+        paired,
+    );
+    let noise = (per_mask > 1).then_some(ValueNoise {
+        coalitions: &variances,
+        empty: empty_variance,
+    });
+    let estimate = estimate_shapley_with_noise(design, &values, empty, full, noise)?;
     Ok(MaskedGame {
         values,
         empty,
@@ -103,4 +118,26 @@ pub fn evaluate_design(
         inputs,
         estimate,
     })
+}
+
+/// Mean of the draws and the estimated variance of that mean. The units are the draws,
+/// or the means of consecutive pairs when the draws are antithetic pairs (an odd last
+/// draw is its own unit); with a single unit the variance is unknown and taken as 0.
+fn mean_and_variance_of_mean(draws: &[f64], paired: bool) -> (f64, f64) {
+    let units: Vec<f64> = if paired {
+        draws
+            .chunks(2)
+            .map(|c| c.iter().sum::<f64>() / c.len() as f64)
+            .collect()
+    } else {
+        draws.to_vec()
+    };
+    let mean = draws.iter().sum::<f64>() / draws.len() as f64;
+    if units.len() < 2 {
+        return (mean, 0.0);
+    }
+    let n = units.len() as f64;
+    let unit_mean = units.iter().sum::<f64>() / n;
+    let ss: f64 = units.iter().map(|v| (v - unit_mean).powi(2)).sum();
+    (mean, ss / (n - 1.0) / n)
 }

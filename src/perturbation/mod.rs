@@ -38,6 +38,12 @@ pub trait PerturbationFamily: Send + Sync {
     /// Filled copies per mask: 1 for a deterministic fill, the number of draws otherwise.
     fn draws(&self) -> usize;
 
+    /// Whether consecutive draws are antithetic pairs (the second mirrors the first about
+    /// the conditional mean), so that the pair, not the draw, is the unit of variance.
+    fn paired_draws(&self) -> bool {
+        false
+    }
+
     /// Writes `out.nrows()` filled copies of `input`: features with `kept[i]` keep their
     /// value, the others are filled. `rng` is the only source of randomness.
     fn fill(

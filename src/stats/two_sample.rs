@@ -11,6 +11,7 @@
 
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use rand::seq::index::sample;
+use rand::seq::SliceRandom;
 use rand_chacha::ChaCha8Rng;
 
 use crate::linalg;
@@ -33,14 +34,17 @@ pub fn detectability_auc(
     if per_class < 4 {
         return None;
     }
+    // A random subset in random order: perturbed inputs come in design order (an
+    // enumerated design lists coalitions by their bits), so splitting them by position
+    // without shuffling would train and test on systematically different masks.
     let pick = |rows: ArrayView2<'_, f64>, rng: &mut ChaCha8Rng| {
         let mut idx = sample(rng, rows.nrows(), per_class).into_vec();
-        idx.sort_unstable();
+        idx.shuffle(rng);
         rows.select(Axis(0), &idx)
     };
     let positive = pick(perturbed, rng);
     let negative = pick(reference, rng);
-    // Alternate rows into training and test halves (the picks are already random).
+    // Alternate rows into training and test halves (the picks are in random order).
     let half = |rows: &Array2<f64>, parity: usize| {
         let idx: Vec<usize> = (0..rows.nrows()).filter(|r| r % 2 == parity).collect();
         rows.select(Axis(0), &idx)
@@ -151,5 +155,33 @@ mod tests {
         assert!(far > 0.97, "{far}");
         // 256 per class in each half: the AUC's standard error is about 0.036.
         assert!((near - 0.5).abs() < 0.12, "{near}");
+    }
+
+    /// Perturbed inputs arrive in design order. Two clusters alternating row by row, drawn
+    /// from the same mixture as the reference, are indistinguishable from it: a split by
+    /// position alone would train on one cluster and test on the other.
+    #[test]
+    fn input_order_does_not_leak_into_the_split() {
+        let mut rng = ChaCha8Rng::seed_from_u64(8);
+        let mut mixture = |n: usize, alternate: bool| {
+            let mut rows = Array2::<f64>::zeros((n, 2));
+            for (r, mut row) in rows.outer_iter_mut().enumerate() {
+                let side = if alternate {
+                    r % 2 == 0
+                } else {
+                    rand::Rng::random::<bool>(&mut rng)
+                };
+                for v in row.iter_mut() {
+                    let z: f64 = StandardNormal.sample(&mut rng);
+                    *v = z + if side { 4.0 } else { -4.0 };
+                }
+            }
+            rows
+        };
+        let reference = mixture(600, false);
+        let ordered = mixture(200, true);
+        let mut rng = ChaCha8Rng::seed_from_u64(9);
+        let auc = detectability_auc(ordered.view(), reference.view(), &mut rng).unwrap();
+        assert!((auc - 0.5).abs() < 0.12, "{auc}");
     }
 }
