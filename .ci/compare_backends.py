@@ -1,10 +1,12 @@
 #!/usr/bin/env python3
 """Compare two kilter JSON Lines outputs field by field.
 
-Usage: compare_backends.py A.jsonl B.jsonl [TOLERANCE]
+Usage: compare_backends.py A.jsonl B.jsonl [TOLERANCE [FLOOR]]
 
 Every record of A is paired with the record on the same line of B. Floating-point numbers
-must agree to TOLERANCE (default 1e-9) in relative difference |a - b| / max(|a|, |b|, 1e-300);
+must agree to TOLERANCE (default 1e-9) in relative difference |a - b| / max(|a|, |b|, FLOOR)
+(FLOOR default 1e-300; audit records set it so that attributions that are zero up to
+round-off compare by their absolute difference);
 booleans, integers, strings and nulls must be equal, and both records must have the same
 structure. Nested objects and arrays are compared element by element, each leaf named by
 its path (e.g. `scores.knn_distance`, `p_values[2]`; array indices are folded into `[]` for
@@ -17,6 +19,9 @@ import math
 import sys
 
 
+FLOOR = 1e-300
+
+
 def relative_difference(a, b):
     if a == b:  # also equal infinities
         return 0.0
@@ -24,7 +29,7 @@ def relative_difference(a, b):
         return 0.0
     if math.isnan(a) or math.isnan(b) or math.isinf(a) or math.isinf(b):
         return math.inf
-    return abs(a - b) / max(abs(a), abs(b), 1e-300)
+    return abs(a - b) / max(abs(a), abs(b), FLOOR)
 
 
 def kind(value):
@@ -119,13 +124,15 @@ def read_jsonl(name):
 
 
 def main(argv):
-    if len(argv) not in (3, 4):
+    global FLOOR
+    if len(argv) not in (3, 4, 5):
         print(__doc__.strip().splitlines()[2], file=sys.stderr)
         return 2
     try:
-        tolerance = float(argv[3]) if len(argv) == 4 else 1e-9
+        tolerance = float(argv[3]) if len(argv) >= 4 else 1e-9
+        FLOOR = float(argv[4]) if len(argv) == 5 else FLOOR
     except ValueError:
-        print(f"tolerance must be a number, not {argv[3]!r}", file=sys.stderr)
+        print(f"tolerance and floor must be numbers, not {argv[3:]!r}", file=sys.stderr)
         return 2
     try:
         first, second = read_jsonl(argv[1]), read_jsonl(argv[2])
