@@ -31,7 +31,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use crate::attribution::{integrated_gradients, CoalitionDesign, QuadratureRule};
-use crate::baselines::{Baseline, BaselineSpec};
+use crate::baselines::{BaselineChoice, BaselineMaker, BaselineSpec, ImageShape};
 use crate::error::{Error, Result};
 use crate::groups::Groups;
 use crate::models::{check_target, FiniteDifference, GradientMethod, Model};
@@ -99,8 +99,10 @@ pub struct AuditSettings {
     pub fill: FillValue,
     /// How replacement draws masked groups.
     pub sampler: Sampler,
-    /// Where the path starts.
-    pub baseline: BaselineSpec,
+    /// Where the path starts: a fixed candidate or the best-ranked of a list.
+    pub baseline: BaselineChoice,
+    /// The input's image shape, for image inputs (blur baselines).
+    pub image: Option<ImageShape>,
     /// The output explained; `None` picks the top-scoring one per row.
     pub target: Option<usize>,
     /// Seed of every random choice.
@@ -120,7 +122,8 @@ impl Default for AuditSettings {
             rule: QuadratureRule::Midpoint,
             fill: FillValue::Zero,
             sampler: Sampler::Gaussian,
-            baseline: BaselineSpec::Mean,
+            baseline: BaselineChoice::Best(crate::baselines::default_candidates(false)),
+            image: None,
             target: None,
             seed: 0,
             alpha: 0.01,
@@ -255,6 +258,75 @@ pub struct AuditRecord {
     pub reasons: Vec<String>,
 }
 
+/// One ranked baseline candidate (SPEC: `kilter baseline`, `candidates`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BaselineCandidate {
+    pub name: String,
+    /// `p_combined` of the baseline (the median over the draws for `uniform:N`,
+    /// `reference:N`).
+    pub baseline_p: f64,
+    /// Fraction of the path points off-manifold.
+    pub path_off_manifold_rate: f64,
+    /// The model's score for the target at the baseline (mean over draws).
+    pub prediction_at_baseline: f64,
+    /// Completeness gap of integrated gradients from this baseline.
+    pub completeness_gap: f64,
+    /// Spearman correlation of its attribution with the replacement family's.
+    pub agreement_with_replacement: f64,
+    /// The ranking score (README: baseline ranking).
+    pub score: f64,
+}
+
+/// One `kilter baseline` record.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BaselineRecord {
+    pub row: usize,
+    pub target: usize,
+    /// The model's score for `target` on the input.
+    pub prediction: f64,
+    /// The best candidate's name.
+    pub recommended: String,
+    /// Every candidate, best first.
+    pub candidates: Vec<BaselineCandidate>,
+}
+
+/// A candidate with what the audit needs of it beyond the record.
+#[derive(Debug, Clone)]
+pub struct BaselineEvaluation {
+    pub record: BaselineCandidate,
+    /// Integrated gradients summed within groups (averaged over the draws).
+    pub attribution: Vec<f64>,
+    pub gradients: GradientMethod,
+    pub path_median_p: f64,
+    /// The embedded path points.
+    pub embedded_path: Array2<f64>,
+    contrast: f64,
+}
+
+/// The ranking score of a baseline candidate:
+///
+/// ```text
+/// gate    = min(1, baseline_p / α)²
+/// quality = 0.35 (1 + ρ_R)/2 + 0.3 (1 - path_off_manifold_rate)
+///         + 0.2 (1 - min(1, completeness_gap / 0.25)) + 0.15 contrast
+/// score   = gate · quality
+/// ```
+///
+/// ρ_R is the Spearman agreement with the replacement attribution and `contrast` the
+/// candidate's `|f(x) - f(x')|` over the largest among the candidates (a baseline that
+/// the model scores like the input explains nothing). The gate makes a baseline that is
+/// itself off the data lose to any on-data one of comparable quality.
+pub fn baseline_score(candidate: &BaselineCandidate, contrast: f64, alpha: f64) -> f64 {
+    let gate = (candidate.baseline_p / alpha).min(1.0).powi(2);
+    let quality = 0.35 * (1.0 + candidate.agreement_with_replacement) / 2.0
+        + 0.3 * (1.0 - candidate.path_off_manifold_rate)
+        + 0.2 * (1.0 - (candidate.completeness_gap / 0.25).min(1.0))
+        + 0.15 * contrast;
+    (gate * quality).clamp(0.0, 1.0)
+}
+
 /// Everything needed to audit rows: the profile, the model, the groups and the families.
 pub struct Auditor<'a> {
     profile: &'a Profile,
@@ -263,7 +335,7 @@ pub struct Auditor<'a> {
     settings: AuditSettings,
     deletion: Deletion,
     replacement: Box<dyn PerturbationFamily>,
-    baseline: Baseline,
+    baselines: BaselineMaker,
     differences: FiniteDifference,
 }
 
@@ -276,6 +348,7 @@ enum Stream {
     DetectDeletion = 3,
     DetectReplacement = 4,
     DetectInterpolation = 5,
+    Baselines = 6,
 }
 
 impl<'a> Auditor<'a> {
@@ -318,7 +391,15 @@ impl<'a> Auditor<'a> {
             }
             Sampler::Marginal => Box::new(MarginalRows::new(rows, settings.draws)),
         };
-        let baseline = Baseline::new(settings.baseline.clone(), reference);
+        let baselines = BaselineMaker::new(profile, settings.image);
+        match &settings.baseline {
+            BaselineChoice::Fixed(spec) => baselines.check(spec)?,
+            BaselineChoice::Best(list) => {
+                for spec in list {
+                    baselines.check(spec)?;
+                }
+            }
+        }
         let differences = FiniteDifference::new(&profile.feature_spread(), model.precision());
         Ok(Auditor {
             profile,
@@ -327,7 +408,7 @@ impl<'a> Auditor<'a> {
             settings,
             deletion,
             replacement,
-            baseline,
+            baselines,
             differences,
         })
     }
@@ -347,6 +428,146 @@ impl<'a> Auditor<'a> {
         self.deletion.inputs_phrase()
     }
 
+    fn detectability(
+        &self,
+        row: usize,
+        purpose: Stream,
+        embedded: ndarray::ArrayView2<'_, f64>,
+    ) -> Option<f64> {
+        detectability_auc(
+            embedded,
+            self.profile.index().rows(),
+            &mut self.stream(row, purpose),
+        )
+    }
+
+    /// Evaluates each baseline candidate for one row and ranks them, best first
+    /// (SPEC: `kilter baseline`; the score is documented in the README and in
+    /// [`baseline_score`]). `replacement` is the row's replacement attribution.
+    pub fn evaluate_baselines(
+        &self,
+        row: usize,
+        input: ArrayView1<'_, f64>,
+        target: usize,
+        replacement: &[f64],
+        candidates: &[BaselineSpec],
+    ) -> Result<Vec<BaselineEvaluation>> {
+        let mut rng = self.stream(row, Stream::Baselines);
+        let m = self.groups.len();
+        let k = self.settings.top_k.min(m.saturating_sub(1).max(1));
+        let alpha = self.settings.alpha;
+        let mut evaluations = Vec::with_capacity(candidates.len());
+        for spec in candidates {
+            let rows = self.baselines.rows(
+                spec,
+                input,
+                &self.groups,
+                self.profile,
+                self.model,
+                target,
+                &mut rng,
+            )?;
+            let path = integrated_gradients(
+                self.model,
+                &self.differences,
+                input,
+                rows.view(),
+                target,
+                self.settings.rule,
+                self.settings.steps,
+            )?;
+            let all = concatenate![Axis(0), rows.view(), path.path.view()];
+            let embedded = self.profile.embed(all.view())?;
+            let p = self.profile.score_embedded(embedded.view())?.p_combined;
+            let p = p.as_slice().expect("contiguous");
+            let nb = rows.nrows();
+            let (_, baseline_p) = off_manifold(&p[..nb], alpha);
+            let (path_rate, path_median_p) = off_manifold(&p[nb..], alpha);
+            let attribution = self
+                .groups
+                .sum_within(path.per_feature.as_slice().expect("contiguous"));
+            let agreement = Agreement::between(&attribution, replacement, k);
+            let prediction_at_baseline =
+                path.at_baselines.iter().sum::<f64>() / path.at_baselines.len() as f64;
+            evaluations.push(BaselineEvaluation {
+                record: BaselineCandidate {
+                    name: spec.to_string(),
+                    baseline_p,
+                    path_off_manifold_rate: path_rate,
+                    prediction_at_baseline,
+                    completeness_gap: path.completeness_gap,
+                    agreement_with_replacement: agreement.spearman,
+                    score: 0.0,
+                },
+                attribution,
+                gradients: path.gradients,
+                path_median_p,
+                embedded_path: embedded.slice(ndarray::s![nb.., ..]).to_owned(),
+                contrast: (path.at_input - prediction_at_baseline).abs(),
+            });
+        }
+        let widest = evaluations
+            .iter()
+            .map(|e| e.contrast)
+            .fold(0.0_f64, f64::max);
+        for e in &mut evaluations {
+            let contrast = if widest > 0.0 {
+                e.contrast / widest
+            } else {
+                0.0
+            };
+            e.record.score = baseline_score(&e.record, contrast, alpha);
+        }
+        // Stable: equal scores keep the order the candidates were given in.
+        evaluations.sort_by(|a, b| b.record.score.total_cmp(&a.record.score));
+        Ok(evaluations)
+    }
+
+    /// The `kilter baseline` record of one row: the replacement attribution on this row's
+    /// mask design, then every candidate ranked against it.
+    pub fn baseline_row(
+        &self,
+        row: usize,
+        input: ArrayView1<'_, f64>,
+        candidates: &[BaselineSpec],
+    ) -> Result<BaselineRecord> {
+        let (target, prediction) = self.target_and_prediction(input)?;
+        let design = CoalitionDesign::shapley_kernel(
+            self.groups.len(),
+            self.settings.samples,
+            &mut self.stream(row, Stream::Design),
+        );
+        let replaced = evaluate_design(
+            self.model,
+            self.replacement.as_ref(),
+            input,
+            &self.groups,
+            &design,
+            target,
+            prediction,
+            &mut self.stream(row, Stream::Replacement),
+        )?;
+        let ranked =
+            self.evaluate_baselines(row, input, target, &replaced.estimate.values, candidates)?;
+        Ok(BaselineRecord {
+            row,
+            target,
+            prediction,
+            recommended: ranked[0].record.name.clone(),
+            candidates: ranked.into_iter().map(|e| e.record).collect(),
+        })
+    }
+
+    fn target_and_prediction(&self, input: ArrayView1<'_, f64>) -> Result<(usize, f64)> {
+        let original = self.model.predict(input.insert_axis(Axis(0)))?;
+        let target = match self.settings.target {
+            Some(t) => t,
+            None => argmax(original.row(0)),
+        };
+        check_target(&original, target)?;
+        Ok((target, original[[0, target]]))
+    }
+
     fn stream(&self, row: usize, purpose: Stream) -> ChaCha8Rng {
         let mut rng = ChaCha8Rng::seed_from_u64(self.settings.seed);
         rng.set_stream(row as u64 * 8 + purpose as u64);
@@ -361,13 +582,7 @@ impl<'a> Auditor<'a> {
         supplied: Option<&[f64]>,
     ) -> Result<AuditRecord> {
         let m = self.groups.len();
-        let original = self.model.predict(input.insert_axis(Axis(0)))?;
-        let target = match self.settings.target {
-            Some(t) => t,
-            None => argmax(original.row(0)),
-        };
-        check_target(&original, target)?;
-        let prediction = original[[0, target]];
+        let (target, prediction) = self.target_and_prediction(input)?;
 
         let design = CoalitionDesign::shapley_kernel(
             m,
@@ -394,52 +609,21 @@ impl<'a> Auditor<'a> {
             prediction,
             &mut self.stream(row, Stream::Replacement),
         )?;
-        let baselines = self.baseline.rows_for(input, &self.groups);
-        let path = integrated_gradients(
-            self.model,
-            &self.differences,
-            input,
-            baselines.view(),
-            target,
-            self.settings.rule,
-            self.settings.steps,
-        )?;
-        let path_attribution = self
-            .groups
-            .sum_within(path.per_feature.as_slice().expect("contiguous"));
-
-        // Off-manifold scores of everything, in one batch: input, deletion, replacement, path.
+        // Off-manifold scores of the input and the masked inputs, in one batch.
         let all = concatenate![
             Axis(0),
             input.insert_axis(Axis(0)),
             deleted.inputs.view(),
-            replaced.inputs.view(),
-            path.path.view()
+            replaced.inputs.view()
         ];
         let embedded = self.profile.embed(all.view())?;
-        let scores = self.profile.score_embedded(embedded.view())?;
-        let p = scores.p_combined;
-        let (nd, nr) = (deleted.inputs.nrows(), replaced.inputs.nrows());
-        let spans = [
-            (1, 1 + nd),
-            (1 + nd, 1 + nd + nr),
-            (1 + nd + nr, all.nrows()),
-        ];
-        let reference = self.profile.index().rows();
-        let detect = |span: (usize, usize), purpose: Stream| {
-            detectability_auc(
-                embedded.slice(ndarray::s![span.0..span.1, ..]),
-                reference,
-                &mut self.stream(row, purpose),
-            )
-        };
+        let p = self.profile.score_embedded(embedded.view())?.p_combined;
+        let nd = deleted.inputs.nrows();
+        let spans = [(1, 1 + nd), (1 + nd, all.nrows())];
         let alpha = self.settings.alpha;
-        let off = |span: (usize, usize)| {
-            off_manifold(&p.as_slice().expect("contiguous")[span.0..span.1], alpha)
-        };
-
-        let masking = |game: &MaskedGame, fill: String, span, purpose| {
-            let (rate, median) = off(span);
+        let masking = |game: &MaskedGame, fill: String, span: (usize, usize), purpose| {
+            let (rate, median) =
+                off_manifold(&p.as_slice().expect("contiguous")[span.0..span.1], alpha);
             MaskingFamily {
                 fill,
                 attribution: game.estimate.values.clone(),
@@ -450,7 +634,11 @@ impl<'a> Auditor<'a> {
                 perturbed_inputs: game.inputs.nrows(),
                 off_manifold_rate: rate,
                 median_p: median,
-                detectability_auc: detect(span, purpose),
+                detectability_auc: self.detectability(
+                    row,
+                    purpose,
+                    embedded.slice(ndarray::s![span.0..span.1, ..]),
+                ),
             }
         };
         let deletion = masking(
@@ -465,17 +653,28 @@ impl<'a> Auditor<'a> {
             spans[1],
             Stream::DetectReplacement,
         );
-        let (path_rate, path_median) = off(spans[2]);
+
+        let candidates = match &self.settings.baseline {
+            BaselineChoice::Best(list) => list.clone(),
+            BaselineChoice::Fixed(spec) => vec![spec.clone()],
+        };
+        let mut ranked =
+            self.evaluate_baselines(row, input, target, &replacement.attribution, &candidates)?;
+        let best = ranked.swap_remove(0);
         let interpolation = PathFamily {
-            baseline: self.baseline.name(),
-            prediction_at_baseline: path.at_baselines[0],
-            attribution: path_attribution,
-            completeness_gap: path.completeness_gap,
-            gradients: path.gradients,
-            perturbed_inputs: path.path.nrows(),
-            off_manifold_rate: path_rate,
-            median_p: path_median,
-            detectability_auc: detect(spans[2], Stream::DetectInterpolation),
+            baseline: best.record.name.clone(),
+            prediction_at_baseline: best.record.prediction_at_baseline,
+            attribution: best.attribution,
+            completeness_gap: best.record.completeness_gap,
+            gradients: best.gradients,
+            perturbed_inputs: best.embedded_path.nrows(),
+            off_manifold_rate: best.record.path_off_manifold_rate,
+            median_p: best.path_median_p,
+            detectability_auc: self.detectability(
+                row,
+                Stream::DetectInterpolation,
+                best.embedded_path.view(),
+            ),
         };
 
         let k = self.settings.top_k.min(m.saturating_sub(1).max(1));

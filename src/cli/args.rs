@@ -32,6 +32,10 @@ pub enum Command {
     /// agreement, and a reliability score with reasons for every input row.
     #[command(after_help = AUDIT_EXAMPLE)]
     Audit(Box<AuditArgs>),
+    /// Rank baselines for path methods: how far each lies from the data, how its path
+    /// behaves, and how its attribution agrees with the in-distribution one.
+    #[command(after_help = BASELINE_EXAMPLE)]
+    Baseline(Box<BaselineArgs>),
     /// Fit and score kilter's invented example scenario, masked inputs included.
     #[command(after_help = DEMO_EXAMPLE)]
     Demo(DemoArgs),
@@ -51,6 +55,11 @@ const AUDIT_EXAMPLE: &str = "Examples:
       --image 8x8 --patch 2 --sampler neighbours --fail-under 0.4
 
 Exit status 3 with --fail-under R: some row scored below R (all records are still written).";
+const BASELINE_EXAMPLE: &str = "Examples:
+  kilter baseline --profile wine.kprofile --model wine_model.json --input new_batch.csv \\
+      --label-column cultivar --out baselines.jsonl
+  kilter baseline --profile digits.kprofile --model digits.onnx --input digits.npy \\
+      --image 8x8 --patch 2 --candidates zero,mean,blur:1,reference:16";
 const DEMO_EXAMPLE: &str = "Example:
   kilter demo --out kilter-demo";
 
@@ -156,19 +165,10 @@ pub struct DemoArgs {
     pub out: PathBuf,
 }
 
+/// What audit and baseline share: the groups, the target, the mask design, the
+/// replacement sampler and the path.
 #[derive(Debug, Args)]
-pub struct AuditArgs {
-    /// Profile written by `kilter fit`.
-    #[arg(long, value_name = "PROFILE")]
-    pub profile: PathBuf,
-    #[command(flatten)]
-    pub model: ModelArgs,
-    /// Inputs whose explanations are audited: .csv or .npy, the profile's columns.
-    #[arg(long, value_name = "FILE")]
-    pub input: PathBuf,
-    /// Attributions computed elsewhere: one row per input row, one column per group.
-    #[arg(long, value_name = "FILE")]
-    pub explanations: Option<PathBuf>,
+pub struct AttributionArgs {
     /// Groups of features (JSON list of lists of indices or names); default one per feature.
     #[arg(long, value_name = "FILE", conflicts_with = "image")]
     pub groups: Option<PathBuf>,
@@ -187,21 +187,15 @@ pub struct AuditArgs {
     /// Replacement draws per mask, averaged.
     #[arg(long, default_value_t = 4, value_name = "D")]
     pub draws: usize,
+    /// How replacement draws masked groups: gaussian, neighbours or marginal.
+    #[arg(long, default_value = "gaussian", value_name = "SAMPLER")]
+    pub sampler: String,
     /// Path points of the interpolation family.
     #[arg(long, default_value_t = 64, value_name = "M")]
     pub steps: usize,
     /// Quadrature rule of the path: midpoint, trapezoid or gauss-legendre.
     #[arg(long, default_value = "midpoint", value_name = "RULE")]
     pub rule: String,
-    /// Baseline of the interpolation path: zero, mean, median or constant:V.
-    #[arg(long, default_value = "mean", value_name = "NAME")]
-    pub baseline: String,
-    /// What deletion sets masked groups to: zero, mean, or a number.
-    #[arg(long, default_value = "zero", value_name = "zero|mean|VALUE")]
-    pub fill: String,
-    /// How replacement draws masked groups: gaussian, neighbours or marginal.
-    #[arg(long, default_value = "gaussian", value_name = "SAMPLER")]
-    pub sampler: String,
     /// Groups in the top-k overlap of the agreement statistics.
     #[arg(long = "top-k", default_value_t = 3, value_name = "K")]
     pub top_k: usize,
@@ -211,9 +205,56 @@ pub struct AuditArgs {
     /// Significance level for off-manifold inputs.
     #[arg(long, default_value_t = 0.01, value_name = "A")]
     pub alpha: f64,
+}
+
+#[derive(Debug, Args)]
+pub struct AuditArgs {
+    /// Profile written by `kilter fit`.
+    #[arg(long, value_name = "PROFILE")]
+    pub profile: PathBuf,
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// Inputs whose explanations are audited: .csv or .npy, the profile's columns.
+    #[arg(long, value_name = "FILE")]
+    pub input: PathBuf,
+    /// Attributions computed elsewhere: one row per input row, one column per group.
+    #[arg(long, value_name = "FILE")]
+    pub explanations: Option<PathBuf>,
+    #[command(flatten)]
+    pub attribution: AttributionArgs,
+    /// Baseline of the interpolation path: best (the top candidate of `kilter baseline`),
+    /// or zero, mean, median, constant:V, nearest, uniform:N, reference:N, blur:S.
+    #[arg(long, default_value = "best", value_name = "NAME")]
+    pub baseline: String,
+    /// What deletion sets masked groups to: zero, mean, or a number.
+    #[arg(long, default_value = "zero", value_name = "zero|mean|VALUE")]
+    pub fill: String,
     /// Exit with status 3 if any row's reliability is below R (records are still written).
     #[arg(long = "fail-under", value_name = "R")]
     pub fail_under: Option<f64>,
+    /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    #[command(flatten)]
+    pub columns: ColumnArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct BaselineArgs {
+    /// Profile written by `kilter fit`.
+    #[arg(long, value_name = "PROFILE")]
+    pub profile: PathBuf,
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// Inputs whose path baselines are ranked: .csv or .npy, the profile's columns.
+    #[arg(long, value_name = "FILE")]
+    pub input: PathBuf,
+    /// Candidates, a comma list (zero, mean, median, constant:V, nearest, uniform:N,
+    /// reference:N, blur:S), or all: every one that applies.
+    #[arg(long, default_value = "all", value_name = "LIST")]
+    pub candidates: String,
+    #[command(flatten)]
+    pub attribution: AttributionArgs,
     /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,

@@ -7,12 +7,14 @@ use ndarray::Axis;
 use rayon::prelude::*;
 
 use kilter::audit::{check_supplied, AuditRecord, AuditSettings, Auditor, Verdict};
+use kilter::baselines::{BaselineChoice, ImageShape};
 use kilter::corpus::read_matrix;
 use kilter::groups::Groups;
+use kilter::perturbation::FillValue;
 use kilter::profile::Profile;
 use kilter::{Error, Result};
 
-use super::args::AuditArgs;
+use super::args::{AttributionArgs, AuditArgs};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
 use super::{record_io, Context, RecordDestination};
@@ -21,35 +23,97 @@ use super::{record_io, Context, RecordDestination};
 /// every core busy while records stream out in input order.
 const ROWS_PER_WAVE: usize = 16;
 
+/// Computes `work(row)` for every row, a wave of rows at a time in parallel, and hands the
+/// results to `emit` in row order; the first error stops the work.
+pub fn in_waves<R: Send>(
+    rows: usize,
+    work: impl Fn(usize) -> Result<R> + Sync,
+    mut emit: impl FnMut(R) -> Result<()>,
+) -> Result<()> {
+    let wave = ROWS_PER_WAVE.max(2 * rayon::current_num_threads());
+    for start in (0..rows).step_by(wave) {
+        let end = (start + wave).min(rows);
+        let results: Vec<Result<R>> = (start..end).into_par_iter().map(&work).collect();
+        for result in results {
+            emit(result?)?;
+        }
+    }
+    Ok(())
+}
+
 /// Parses `--image HxW[xC]`.
-fn image_shape(text: &str) -> Result<(usize, usize, usize)> {
+pub fn image_shape(text: &str) -> Result<ImageShape> {
     let parts: Vec<Option<usize>> = text.split('x').map(|p| p.parse().ok()).collect();
-    match parts.as_slice() {
-        [Some(h), Some(w)] => Ok((*h, *w, 1)),
-        [Some(h), Some(w), Some(c)] => Ok((*h, *w, *c)),
-        _ => Err(Error::InvalidSetting {
-            flag: "--image",
-            value: text.to_string(),
-            expected: "HxW or HxWxC, such as 8x8 or 32x32x3".into(),
-        }),
+    let (height, width, channels) = match parts.as_slice() {
+        [Some(h), Some(w)] => (*h, *w, 1),
+        [Some(h), Some(w), Some(c)] => (*h, *w, *c),
+        _ => {
+            return Err(Error::InvalidSetting {
+                flag: "--image",
+                value: text.to_string(),
+                expected: "HxW or HxWxC, such as 8x8 or 32x32x3".into(),
+            })
+        }
+    };
+    Ok(ImageShape {
+        height,
+        width,
+        channels,
+    })
+}
+
+/// Groups from `--groups`, `--image --patch`, or one per feature.
+pub fn groups_for(
+    groups: Option<&std::path::Path>,
+    image: Option<ImageShape>,
+    patch: Option<usize>,
+    names: &[String],
+) -> Result<Groups> {
+    match (groups, image) {
+        (Some(path), _) => Groups::from_json_file(path, names),
+        (None, Some(shape)) => Groups::image_patches(
+            shape.height,
+            shape.width,
+            shape.channels,
+            patch.unwrap_or(1),
+            names.len(),
+        ),
+        (None, None) => Ok(Groups::singletons(names)),
     }
 }
 
-fn settings(args: &AuditArgs) -> Result<AuditSettings> {
+/// The settings shared with `kilter baseline`, validated.
+pub fn attribution_settings(
+    a: &AttributionArgs,
+    image: Option<ImageShape>,
+    baseline: BaselineChoice,
+    fill: FillValue,
+) -> Result<AuditSettings> {
     let settings = AuditSettings {
-        samples: args.samples,
-        draws: args.draws,
-        steps: args.steps,
-        rule: args.rule.parse()?,
-        fill: args.fill.parse()?,
-        sampler: args.sampler.parse()?,
-        baseline: args.baseline.parse()?,
-        target: args.target,
-        seed: args.seed,
-        alpha: args.alpha,
-        top_k: args.top_k,
+        samples: a.samples,
+        draws: a.draws,
+        steps: a.steps,
+        rule: a.rule.parse()?,
+        fill,
+        sampler: a.sampler.parse()?,
+        baseline,
+        image,
+        target: a.target,
+        seed: a.seed,
+        alpha: a.alpha,
+        top_k: a.top_k,
     };
     settings.validate()?;
+    Ok(settings)
+}
+
+fn settings(args: &AuditArgs, image: Option<ImageShape>) -> Result<AuditSettings> {
+    let settings = attribution_settings(
+        &args.attribution,
+        image,
+        BaselineChoice::parse(&args.baseline, image.is_some())?,
+        args.fill.parse()?,
+    )?;
     if let Some(bar) = args.fail_under {
         if !(0.0..=1.0).contains(&bar) {
             return Err(Error::InvalidSetting {
@@ -63,8 +127,9 @@ fn settings(args: &AuditArgs) -> Result<AuditSettings> {
 }
 
 pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
-    let settings = settings(&args)?;
-    let image = args.image.as_deref().map(image_shape).transpose()?;
+    let a = &args.attribution;
+    let image = a.image.as_deref().map(image_shape).transpose()?;
+    let settings = settings(&args, image)?;
     let source = model_source(&args.model)?;
     let mut inputs = source.input_paths();
     inputs.push(&args.profile);
@@ -72,7 +137,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
     if let Some(p) = &args.explanations {
         inputs.push(p);
     }
-    if let Some(p) = &args.groups {
+    if let Some(p) = &a.groups {
         inputs.push(p);
     }
     let destination = RecordDestination::new(args.out.as_deref(), &inputs)?;
@@ -82,13 +147,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
     let input = read_matrix(&args.input, &options)?;
     profile.check_input(&input)?;
     let names = profile.feature_names();
-    let groups = match (&args.groups, image) {
-        (Some(path), _) => Groups::from_json_file(path, names)?,
-        (None, Some((h, w, c))) => {
-            Groups::image_patches(h, w, c, args.patch.unwrap_or(1), names.len())?
-        }
-        (None, None) => Groups::singletons(names),
-    };
+    let groups = groups_for(a.groups.as_deref(), image, a.patch, names)?;
     let supplied = match &args.explanations {
         None => None,
         Some(path) => {
@@ -103,23 +162,17 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
     let rows = input.rows();
     let mut summary = Summary::default();
     destination.write(|writer| {
-        let wave = ROWS_PER_WAVE.max(2 * rayon::current_num_threads());
-        for start in (0..rows).step_by(wave) {
-            let end = (start + wave).min(rows);
-            let records: Vec<Result<AuditRecord>> = (start..end)
-                .into_par_iter()
-                .map(|r| {
-                    let own = supplied.as_ref().map(|s| s.row(r).to_vec());
-                    auditor.audit_row(r, input.values.index_axis(Axis(0), r), own.as_deref())
-                })
-                .collect();
-            for record in records {
-                let record = record?;
+        in_waves(
+            rows,
+            |r| {
+                let own = supplied.as_ref().map(|s| s.row(r).to_vec());
+                auditor.audit_row(r, input.values.index_axis(Axis(0), r), own.as_deref())
+            },
+            |record: AuditRecord| {
                 summary.add(&record);
-                writer.write(&record).map_err(record_io)?;
-            }
-        }
-        Ok(())
+                writer.write(&record).map_err(record_io)
+            },
+        )
     })?;
     if !context.quiet {
         summary.print(&auditor);
@@ -179,7 +232,7 @@ impl Summary {
         );
         let _ = writeln!(
             stderr,
-            "  deletion: {}; replacement: {} sampler, {} draws; {} masks; path: {} baseline, {} {} points; seed {}",
+            "  deletion: {}; replacement: {} sampler, {} draws; {} masks; path: baseline {}, {} {} points; seed {}",
             auditor.deletion_fill(),
             s.sampler,
             s.draws,
@@ -198,10 +251,6 @@ impl Summary {
                 let _ = writeln!(stderr, "    row {row}: {score:.2}  {reason}");
             }
         }
-        let _ = writeln!(
-            stderr,
-            "  a reliability score is a diagnostic, not a guarantee; decisions about people \
-             defer to the applicable regulations and your organisation's model-risk practice"
-        );
+        let _ = writeln!(stderr, "  {}", super::CAUTION);
     }
 }

@@ -5,6 +5,7 @@
 
 mod args;
 mod audit;
+mod baseline;
 mod demo;
 mod fit;
 mod predict;
@@ -31,6 +32,7 @@ pub fn main() -> ExitCode {
         args::Command::Score(a) => score::run(a, &context),
         args::Command::Predict(a) => predict::run(a, &context),
         args::Command::Audit(a) => audit::run(*a, &context),
+        args::Command::Baseline(a) => baseline::run(*a, &context),
         args::Command::Demo(a) => demo::run(a, &context),
     };
     match outcome {
@@ -119,6 +121,11 @@ impl RecordDestination {
 pub fn record_io(error: io::Error) -> Error {
     Error::io("<records>", error)
 }
+
+/// The caution printed under every audit and baseline summary (and in every report).
+pub const CAUTION: &str =
+    "kilter's scores are diagnostics, not guarantees; decisions about people \
+     defer to the applicable regulations and your organisation's model-risk practice";
 
 /// What every command needs to know about how it was run.
 pub struct Context {

@@ -367,6 +367,8 @@ fn gradients_of_saturated_units_mislead_and_the_audit_says_so() {
         "gauss-legendre",
         "--top-k",
         "2",
+        "--baseline",
+        "mean",
         "--quiet",
     ];
     let mut with = args.to_vec();

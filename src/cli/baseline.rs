@@ -1,0 +1,78 @@
+//! `kilter baseline`: every baseline candidate of the interpolation family ranked for each
+//! input row, with a summary of which wins how often.
+
+use std::collections::BTreeMap;
+use std::io::Write;
+
+use ndarray::Axis;
+
+use kilter::audit::{Auditor, BaselineRecord};
+use kilter::baselines::{parse_candidates, BaselineChoice};
+use kilter::corpus::read_matrix;
+use kilter::perturbation::FillValue;
+use kilter::profile::Profile;
+use kilter::Result;
+
+use super::args::BaselineArgs;
+use super::audit::{attribution_settings, groups_for, image_shape, in_waves};
+use super::fit::csv_options;
+use super::predict::{load_model, model_source};
+use super::{record_io, Context, RecordDestination};
+
+pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
+    let a = &args.attribution;
+    let image = a.image.as_deref().map(image_shape).transpose()?;
+    let candidates = parse_candidates(&args.candidates, image.is_some())?;
+    let settings = attribution_settings(
+        a,
+        image,
+        BaselineChoice::Best(candidates.clone()),
+        FillValue::Zero,
+    )?;
+    let source = model_source(&args.model)?;
+    let mut inputs = source.input_paths();
+    inputs.push(&args.profile);
+    inputs.push(&args.input);
+    if let Some(p) = &a.groups {
+        inputs.push(p);
+    }
+    let destination = RecordDestination::new(args.out.as_deref(), &inputs)?;
+
+    let profile = Profile::load(&args.profile)?;
+    let input = read_matrix(&args.input, &csv_options(&args.columns))?;
+    profile.check_input(&input)?;
+    let groups = groups_for(a.groups.as_deref(), image, a.patch, profile.feature_names())?;
+    let model = load_model(&source, input.columns())?;
+    let auditor = Auditor::new(&profile, model.as_ref(), groups, settings)?;
+
+    let mut wins: BTreeMap<String, usize> = BTreeMap::new();
+    let mut rows = 0;
+    destination.write(|writer| {
+        in_waves(
+            input.rows(),
+            |r| auditor.baseline_row(r, input.values.index_axis(Axis(0), r), &candidates),
+            |record: BaselineRecord| {
+                *wins.entry(record.recommended.clone()).or_default() += 1;
+                rows += 1;
+                writer.write(&record).map_err(record_io)
+            },
+        )
+    })?;
+    if !context.quiet {
+        let mut stderr = std::io::stderr().lock();
+        let mut order: Vec<(&String, &usize)> = wins.iter().collect();
+        order.sort_by(|x, y| y.1.cmp(x.1).then(x.0.cmp(y.0)));
+        let listed: Vec<String> = order
+            .iter()
+            .map(|(name, n)| format!("{name} {n}"))
+            .collect();
+        let _ = writeln!(
+            stderr,
+            "ranked {} candidates on {rows} rows; recommended: {}",
+            candidates.len(),
+            listed.join(", ")
+        );
+        let _ = writeln!(stderr, "  {}", super::CAUTION);
+    }
+    Ok(())
+}
