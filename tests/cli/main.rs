@@ -6,6 +6,7 @@ mod harness;
 mod tolerance;
 
 mod audit;
+mod baselines;
 mod calibration;
 mod encoder;
 mod families;
