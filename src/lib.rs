@@ -31,6 +31,7 @@ pub mod neighbours;
 pub mod output;
 pub mod perturbation;
 pub mod profile;
+pub mod report;
 pub mod scenario;
 pub mod stats;
 

@@ -7,7 +7,9 @@
 //! together, flow follows the pressure drop, vibration follows flow, and chlorine decays
 //! with pipe age. Zeroing one pressure reading produces a segment that cannot exist.
 
-use ndarray::Array2;
+use ndarray::{Array1, Array2};
+
+use crate::models::network::{Activation, Kind, LayerFile, ModelFile};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal, Poisson};
@@ -28,13 +30,29 @@ pub const FEATURES: [&str; 12] = [
     "repairs_last_5y",
 ];
 
+/// The zone head (kPa) of ordinary segments: mean and spread.
+pub const HEAD_MEAN: f64 = 480.0;
+/// Spread of the zone head across the network.
+pub const HEAD_SD: f64 = 45.0;
+
 /// `rows` invented pipe segments, one per row, columns as [`FEATURES`].
 pub fn pipe_segments(rows: usize, seed: u64) -> Array2<f64> {
+    pipe_segments_with_heads(rows, seed, None)
+}
+
+/// Segments whose zone heads are all `head` kPa (for segments in an unusually high or
+/// low pressure zone); otherwise as [`pipe_segments`].
+pub fn pipe_segments_in_zone(rows: usize, seed: u64, head: f64) -> Array2<f64> {
+    pipe_segments_with_heads(rows, seed, Some(head))
+}
+
+fn pipe_segments_with_heads(rows: usize, seed: u64, zone: Option<f64>) -> Array2<f64> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let unit = Normal::new(0.0, 1.0).expect("unit normal");
     let mut out = Array2::<f64>::zeros((rows, FEATURES.len()));
     for mut row in out.outer_iter_mut() {
-        let head = 480.0 + 45.0 * unit.sample(&mut rng);
+        let spread = HEAD_SD * unit.sample(&mut rng);
+        let head = zone.unwrap_or(HEAD_MEAN + spread);
         let age: f64 = rng.random_range(3.0..85.0);
         let diameter = [100.0, 150.0, 200.0, 250.0, 300.0][rng.random_range(0..5)]
             + 2.0 * unit.sample(&mut rng);
@@ -71,6 +89,113 @@ pub fn pipe_segments(rows: usize, seed: u64) -> Array2<f64> {
         }
     }
     out
+}
+
+/// The invented inspection history: whether each segment failed (burst or leak) within
+/// two years, drawn from a hidden logistic risk of age, soil corrosivity, past repairs and
+/// the pressure lost along the segment beyond what its age and diameter explain.
+pub fn failure_history(segments: &Array2<f64>, seed: u64) -> Vec<f64> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    segments
+        .outer_iter()
+        .map(|x| {
+            let drop = x[0] - x[2];
+            let expected_drop = 28.0 * (1.0 + x[5] / 60.0) * 150.0 / x[6];
+            let z = -2.2
+                + 0.035 * (x[5] - 44.0)
+                + 0.3 * (x[7] - 4.5)
+                + 0.55 * x[11]
+                + 0.06 * (drop - expected_drop);
+            let p = 1.0 / (1.0 + (-z).exp());
+            f64::from(u8::from(rng.random::<f64>() < p))
+        })
+        .collect()
+}
+
+/// Trains the demo's risk network on the history: inputs standardized (folded into the
+/// first layer of the stored network), 8 tanh units, one sigmoid output, full-batch Adam
+/// on the cross-entropy with a small weight decay, from a seeded start. Deterministic.
+pub fn train_risk_network(segments: &Array2<f64>, failed: &[f64], seed: u64) -> ModelFile {
+    const HIDDEN: usize = 8;
+    const STEPS: usize = 600;
+    const RATE: f64 = 0.02;
+    const DECAY: f64 = 1e-3;
+    let (n, d) = segments.dim();
+    let mean = segments.mean_axis(ndarray::Axis(0)).expect("rows");
+    let sd = segments
+        .std_axis(ndarray::Axis(0), 0.0)
+        .mapv(|s| s.max(1e-12));
+    let z = (segments - &mean) / &sd;
+    let y = Array1::from(failed.to_vec());
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let init = Normal::new(0.0, 0.4).expect("normal");
+    // Parameters: W1 (HIDDEN x d), b1, w2 (HIDDEN), b2, flattened for Adam.
+    let mut w1 = Array2::from_shape_fn((HIDDEN, d), |_| init.sample(&mut rng));
+    let mut b1 = Array1::<f64>::zeros(HIDDEN);
+    let mut w2 = Array1::from_shape_fn(HIDDEN, |_| init.sample(&mut rng));
+    let mut b2 = 0.0;
+    let count = HIDDEN * d + 2 * HIDDEN + 1;
+    let (mut m1, mut m2) = (vec![0.0; count], vec![0.0; count]);
+    for step in 1..=STEPS {
+        let h = (z.dot(&w1.t()) + &b1).mapv(f64::tanh);
+        let logit = h.dot(&w2) + b2;
+        let p = logit.mapv(|v| 1.0 / (1.0 + (-v).exp()));
+        let residual = (&p - &y) / n as f64;
+        let g_w2 = h.t().dot(&residual) + &(&w2 * DECAY);
+        let g_b2 = residual.sum();
+        let dh = residual
+            .view()
+            .insert_axis(ndarray::Axis(1))
+            .dot(&w2.view().insert_axis(ndarray::Axis(0)))
+            * h.mapv(|v| 1.0 - v * v);
+        let g_w1 = dh.t().dot(&z) + &(&w1 * DECAY);
+        let g_b1 = dh.sum_axis(ndarray::Axis(0));
+        let grads: Vec<f64> = g_w1
+            .iter()
+            .chain(g_b1.iter())
+            .chain(g_w2.iter())
+            .chain(std::iter::once(&g_b2))
+            .copied()
+            .collect();
+        let (beta1, beta2) = (0.9_f64, 0.999_f64);
+        let mut params: Vec<&mut f64> = w1
+            .iter_mut()
+            .chain(b1.iter_mut())
+            .chain(w2.iter_mut())
+            .chain(std::iter::once(&mut b2))
+            .collect();
+        for (i, (param, g)) in params.iter_mut().zip(&grads).enumerate() {
+            m1[i] = beta1 * m1[i] + (1.0 - beta1) * g;
+            m2[i] = beta2 * m2[i] + (1.0 - beta2) * g * g;
+            let m_hat = m1[i] / (1.0 - beta1.powi(step as i32));
+            let v_hat = m2[i] / (1.0 - beta2.powi(step as i32));
+            **param -= RATE * m_hat / (v_hat.sqrt() + 1e-8);
+        }
+    }
+    // Fold the standardization into the first layer: W1 (x - m)/s = (W1/s) x - W1 (m/s).
+    let scaled = &w1 / &sd;
+    let folded_bias = &b1 - &scaled.dot(&mean);
+    ModelFile {
+        format: "kilter-model".into(),
+        version: 1,
+        kind: Kind::Mlp,
+        inputs: d,
+        layers: vec![
+            LayerFile {
+                weights: scaled.outer_iter().map(|r| r.to_vec()).collect(),
+                bias: folded_bias.to_vec(),
+                activation: Activation::Tanh,
+            },
+            LayerFile {
+                weights: vec![w2.to_vec()],
+                bias: vec![b2],
+                activation: Activation::Sigmoid,
+            },
+        ],
+        description: Some(format!(
+            "kilter demo: invented pipe-failure risk network, trained on {n} invented segments (seed {seed})"
+        )),
+    }
 }
 
 #[cfg(test)]

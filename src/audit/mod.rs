@@ -180,6 +180,24 @@ pub struct MaskingFamily {
     pub median_p: f64,
     /// Held-out AUC of the classifier two-sample test (null with fewer than 4 inputs).
     pub detectability_auc: Option<f64>,
+    /// Counts of the inputs' `p_combined` in the bins of [`P_BINS`].
+    pub p_histogram: Vec<usize>,
+}
+
+/// Bin edges of `p_histogram`: finer toward 0, where off-manifold inputs fall. Under the
+/// calibration distribution (conformal p-values are uniform) a bin holds about its width.
+pub const P_BINS: [f64; 8] = [0.0, 0.001, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0];
+
+/// Counts of p-values per bin of [`P_BINS`] (the last bin includes 1).
+pub fn p_histogram(p: &[f64]) -> Vec<usize> {
+    let mut counts = vec![0; P_BINS.len() - 1];
+    for &v in p {
+        let bin = (1..P_BINS.len() - 1)
+            .find(|&b| v < P_BINS[b])
+            .map_or(P_BINS.len() - 2, |b| b - 1);
+        counts[bin] += 1;
+    }
+    counts
 }
 
 /// The interpolation family's findings for a row (SPEC: `families.interpolation`).
@@ -204,6 +222,10 @@ pub struct PathFamily {
     pub median_p: f64,
     /// Held-out AUC of the classifier two-sample test (null with fewer than 4 points).
     pub detectability_auc: Option<f64>,
+    /// Counts of the path points' `p_combined` in the bins of [`P_BINS`].
+    pub p_histogram: Vec<usize>,
+    /// Every baseline candidate considered, best first (one with a fixed `--baseline`).
+    pub candidates: Vec<BaselineCandidate>,
 }
 
 /// The three families.
@@ -300,6 +322,8 @@ pub struct BaselineEvaluation {
     pub attribution: Vec<f64>,
     pub gradients: GradientMethod,
     pub path_median_p: f64,
+    /// Counts of the path points' p-values in the bins of [`P_BINS`].
+    pub path_histogram: Vec<usize>,
     /// The embedded path points.
     pub embedded_path: Array2<f64>,
     contrast: f64,
@@ -514,6 +538,7 @@ impl<'a> Auditor<'a> {
                 attribution,
                 gradients: path.gradients,
                 path_median_p,
+                path_histogram: p_histogram(&p[nb..]),
                 embedded_path: embedded.slice(ndarray::s![nb.., ..]).to_owned(),
                 contrast: (path.at_input - prediction_at_baseline).abs(),
             });
@@ -641,7 +666,9 @@ impl<'a> Auditor<'a> {
         let masking = |game: &MaskedGame, fill: String, span: (usize, usize), purpose| {
             let (rate, median) =
                 off_manifold(&p.as_slice().expect("contiguous")[span.0..span.1], alpha);
+            let own = &p.as_slice().expect("contiguous")[span.0..span.1];
             MaskingFamily {
+                p_histogram: p_histogram(own),
                 fill,
                 attribution: game.estimate.values.clone(),
                 standard_errors: game.estimate.standard_errors.clone(),
@@ -677,8 +704,12 @@ impl<'a> Auditor<'a> {
         };
         let mut ranked =
             self.evaluate_baselines(row, input, target, &replacement.attribution, &candidates)?;
-        let best = ranked.swap_remove(0);
+        let best = ranked.remove(0);
+        let mut candidates: Vec<BaselineCandidate> = vec![best.record.clone()];
+        candidates.extend(ranked.iter().map(|e| e.record.clone()));
         let interpolation = PathFamily {
+            p_histogram: best.path_histogram.clone(),
+            candidates,
             baseline: best.record.name.clone(),
             prediction_at_baseline: best.record.prediction_at_baseline,
             attribution: best.attribution,

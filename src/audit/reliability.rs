@@ -236,13 +236,25 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
         .supplied_values
         .map(|values| disagreement(values, &no_errors, &r.attribution, &r.standard_errors));
 
+    // Lead with the evidence that counted: the off-manifold share when it is the main
+    // term, otherwise how much less typical than replacement's the inputs are.
     let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
-        let mut text = format!(
-            "{} of the {noun} fall outside the reference data (p < {alpha}), their median p is \
-             {median_p:.3} against {:.3} for inputs drawn from the data",
-            percent(rate),
-            r.median_p
-        );
+        let share_led = excess(rate, alpha) >= severity(rate, median_p, auc, findings) - 1e-12;
+        let mut text = if share_led {
+            format!(
+                "{} of the {noun} fall outside the reference data (p < {alpha}), their median p \
+                 is {median_p:.3} against {:.3} for inputs drawn from the data",
+                percent(rate),
+                r.median_p
+            )
+        } else {
+            format!(
+                "the {noun} are less typical of the reference data than inputs drawn from it \
+                 (median p {median_p:.3} against {:.3}; {} of them fall outside it at p < {alpha})",
+                r.median_p,
+                percent(rate)
+            )
+        };
         if let Some(a) = auc {
             text.push_str(&format!(
                 ", and a classifier tells them from reference rows with AUC {a:.2}"

@@ -235,6 +235,9 @@ pub struct AuditArgs {
     /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
+    /// Also write a self-contained HTML report (inline CSS and SVG, no script).
+    #[arg(long, value_name = "FILE.html")]
+    pub report: Option<PathBuf>,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }
@@ -258,6 +261,9 @@ pub struct BaselineArgs {
     /// Records file (.jsonl or .csv); JSON Lines on stdout without it.
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
+    /// Also write a self-contained HTML report (inline CSS and SVG, no script).
+    #[arg(long, value_name = "FILE.html")]
+    pub report: Option<PathBuf>,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }

@@ -17,7 +17,8 @@ use kilter::{Error, Result};
 use super::args::{AttributionArgs, AuditArgs};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
-use super::{record_io, Context, RecordDestination};
+use super::{check_report_path, record_io, write_report, Context, RecordDestination};
+use kilter::report::{AuditSection, Report};
 
 /// Rows audited together: each is a few thousand model calls, so a handful per core keeps
 /// every core busy while records stream out in input order.
@@ -141,6 +142,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
         inputs.push(p);
     }
     let destination = RecordDestination::new(args.out.as_deref(), &inputs)?;
+    check_report_path(args.report.as_deref(), &inputs, args.out.as_deref())?;
 
     let profile = Profile::load(&args.profile)?;
     let options = csv_options(&args.columns);
@@ -161,6 +163,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
 
     let rows = input.rows();
     let mut summary = Summary::default();
+    let mut kept: Vec<AuditRecord> = Vec::new();
     destination.write(|writer| {
         in_waves(
             rows,
@@ -170,10 +173,29 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
             },
             |record: AuditRecord| {
                 summary.add(&record);
-                writer.write(&record).map_err(record_io)
+                writer.write(&record).map_err(record_io)?;
+                if args.report.is_some() {
+                    kept.push(record);
+                }
+                Ok(())
             },
         )
     })?;
+    if let Some(path) = &args.report {
+        let mut report = Report::new("kilter audit");
+        report.audit(&AuditSection {
+            title: format!("Audit of {}", args.input.display()),
+            settings: settings_line(&auditor),
+            groups: auditor.groups(),
+            records: &kept,
+            labels: None,
+            image: image.map(|shape| (shape, &input.values)),
+        });
+        write_report(path, &report.finish())?;
+        if !context.quiet {
+            eprintln!("report written to {}", path.display());
+        }
+    }
     if !context.quiet {
         summary.print(&auditor);
     }
@@ -194,6 +216,22 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
         }
     }
     Ok(())
+}
+
+/// One line on how the audit was run.
+pub fn settings_line(auditor: &Auditor<'_>) -> String {
+    let s = auditor.settings();
+    format!(
+        "deletion: {}; replacement: {} sampler, {} draws; {} masks; path: baseline {}, {} {} points; seed {}",
+        auditor.deletion_fill(),
+        s.sampler,
+        s.draws,
+        s.samples,
+        s.baseline,
+        s.steps,
+        s.rule,
+        s.seed
+    )
 }
 
 /// What the closing summary needs: every row's score, row and first reason.
@@ -220,7 +258,6 @@ impl Summary {
 
     fn print(&self, auditor: &Auditor<'_>) {
         let mut stderr = std::io::stderr().lock();
-        let s = auditor.settings();
         let _ = writeln!(
             stderr,
             "audited {} rows over {} groups: {} reliable, {} doubtful, {} unreliable",
@@ -230,18 +267,7 @@ impl Summary {
             self.counts[1],
             self.counts[2]
         );
-        let _ = writeln!(
-            stderr,
-            "  deletion: {}; replacement: {} sampler, {} draws; {} masks; path: baseline {}, {} {} points; seed {}",
-            auditor.deletion_fill(),
-            s.sampler,
-            s.draws,
-            s.samples,
-            s.baseline,
-            s.steps,
-            s.rule,
-            s.seed
-        );
+        let _ = writeln!(stderr, "  {}", settings_line(auditor));
         let mut worst: Vec<&(f64, usize, String)> = self.all.iter().collect();
         worst.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
         let shown: Vec<_> = worst.into_iter().filter(|w| w.0 < 0.7).take(3).collect();

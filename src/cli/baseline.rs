@@ -17,7 +17,8 @@ use super::args::BaselineArgs;
 use super::audit::{attribution_settings, groups_for, image_shape, in_waves};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
-use super::{record_io, Context, RecordDestination};
+use super::{check_report_path, record_io, write_report, Context, RecordDestination};
+use kilter::report::{BaselineSection, Report};
 
 pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     let a = &args.attribution;
@@ -37,6 +38,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
         inputs.push(p);
     }
     let destination = RecordDestination::new(args.out.as_deref(), &inputs)?;
+    check_report_path(args.report.as_deref(), &inputs, args.out.as_deref())?;
 
     let profile = Profile::load(&args.profile)?;
     let input = read_matrix(&args.input, &csv_options(&args.columns))?;
@@ -47,6 +49,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
 
     let mut wins: BTreeMap<String, usize> = BTreeMap::new();
     let mut rows = 0;
+    let mut kept: Vec<BaselineRecord> = Vec::new();
     destination.write(|writer| {
         in_waves(
             input.rows(),
@@ -54,10 +57,36 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
             |record: BaselineRecord| {
                 *wins.entry(record.recommended.clone()).or_default() += 1;
                 rows += 1;
-                writer.write(&record).map_err(record_io)
+                writer.write(&record).map_err(record_io)?;
+                if args.report.is_some() {
+                    kept.push(record);
+                }
+                Ok(())
             },
         )
     })?;
+    if let Some(path) = &args.report {
+        let mut report = Report::new("kilter baseline");
+        report.baselines(&BaselineSection {
+            title: format!("Baselines for {}", args.input.display()),
+            settings: format!(
+                "{} candidates; {} {} points; replacement: {} sampler, {} draws, {} masks; seed {}",
+                candidates.len(),
+                a.steps,
+                a.rule,
+                a.sampler,
+                a.draws,
+                a.samples,
+                a.seed
+            ),
+            records: &kept,
+            labels: None,
+        });
+        write_report(path, &report.finish())?;
+        if !context.quiet {
+            eprintln!("report written to {}", path.display());
+        }
+    }
     if !context.quiet {
         let mut stderr = std::io::stderr().lock();
         let mut order: Vec<(&String, &usize)> = wins.iter().collect();

@@ -117,6 +117,39 @@ impl RecordDestination {
     }
 }
 
+/// Checks `--report FILE.html` before any work: an `.html` name, a writable place, not an
+/// input, not the records file.
+pub fn check_report_path(
+    report: Option<&Path>,
+    inputs: &[&Path],
+    out: Option<&Path>,
+) -> Result<()> {
+    let Some(path) = report else {
+        return Ok(());
+    };
+    let html = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .is_some_and(|e| e.eq_ignore_ascii_case("html") || e.eq_ignore_ascii_case("htm"));
+    if !html {
+        return Err(Error::InvalidSetting {
+            flag: "--report",
+            value: path.display().to_string(),
+            expected: "a file name ending in .html".into(),
+        });
+    }
+    let mut all: Vec<&Path> = inputs.to_vec();
+    if let Some(out) = out {
+        all.push(out);
+    }
+    check_output_path(path, &all)
+}
+
+/// Writes a report file whole or not at all.
+pub fn write_report(path: &Path, html: &str) -> Result<()> {
+    write_atomically(path, |w| w.write_all(html.as_bytes()))
+}
+
 /// Converts a record-writing failure into an error naming the destination.
 pub fn record_io(error: io::Error) -> Error {
     Error::io("<records>", error)
