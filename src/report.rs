@@ -468,9 +468,9 @@ fn image_maps(
         "<figure><svg viewBox=\"0 0 {w} {h}\" width=\"{w}\" height=\"{h}\" role=\"img\" \
          aria-label=\"input image\">"
     );
-    for p in 0..height * width {
+    for (p, &value) in intensity.iter().enumerate() {
         let g = if hi > lo {
-            (intensity[p] - lo) / (hi - lo)
+            (value - lo) / (hi - lo)
         } else {
             0.0
         };
