@@ -112,10 +112,11 @@ pub fn failure_history(segments: &Array2<f64>, seed: u64) -> Vec<f64> {
         .collect()
 }
 
-/// Trains the demo's risk network on the history: inputs standardized (folded into the
-/// first layer of the stored network), 8 tanh units, one sigmoid output, full-batch Adam
-/// on the cross-entropy with a small weight decay, from a seeded start. Deterministic.
-pub fn train_risk_network(segments: &Array2<f64>, failed: &[f64], seed: u64) -> ModelFile {
+/// Trains a small binary classifier for the demo: inputs standardized (folded into the
+/// first layer of the stored network; a constant column keeps scale 1), 8 tanh units, one
+/// sigmoid output, full-batch Adam on the cross-entropy with a small weight decay, from a
+/// seeded start. Deterministic. Used for the pipe-failure risk and the demo's digit model.
+pub fn train_network(segments: &Array2<f64>, failed: &[f64], seed: u64, about: &str) -> ModelFile {
     const HIDDEN: usize = 8;
     const STEPS: usize = 600;
     const RATE: f64 = 0.02;
@@ -193,7 +194,7 @@ pub fn train_risk_network(segments: &Array2<f64>, failed: &[f64], seed: u64) -> 
             },
         ],
         description: Some(format!(
-            "kilter demo: invented pipe-failure risk network, trained on {n} invented segments (seed {seed})"
+            "kilter demo: {about}, trained on {n} rows (seed {seed})"
         )),
     }
 }

@@ -8,6 +8,7 @@ mod tolerance;
 mod audit;
 mod baselines;
 mod calibration;
+mod demo;
 mod encoder;
 mod families;
 mod golden;
