@@ -164,6 +164,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
     let rows = input.rows();
     let mut summary = Summary::default();
     let mut kept: Vec<AuditRecord> = Vec::new();
+    let bar = context.rows_bar(input.rows(), "auditing");
     destination.write(|writer| {
         in_waves(
             rows,
@@ -174,6 +175,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
             |record: AuditRecord| {
                 summary.add(&record);
                 writer.write(&record).map_err(record_io)?;
+                bar.inc(1);
                 if args.report.is_some() {
                     kept.push(record);
                 }
@@ -181,6 +183,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
             },
         )
     })?;
+    bar.finish_and_clear();
     if let Some(path) = &args.report {
         let mut report = Report::new("kilter audit");
         report.audit(&AuditSection {

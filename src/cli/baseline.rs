@@ -50,6 +50,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     let mut wins: BTreeMap<String, usize> = BTreeMap::new();
     let mut rows = 0;
     let mut kept: Vec<BaselineRecord> = Vec::new();
+    let bar = context.rows_bar(input.rows(), "ranking baselines");
     destination.write(|writer| {
         in_waves(
             input.rows(),
@@ -58,6 +59,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
                 *wins.entry(record.recommended.clone()).or_default() += 1;
                 rows += 1;
                 writer.write(&record).map_err(record_io)?;
+                bar.inc(1);
                 if args.report.is_some() {
                     kept.push(record);
                 }
@@ -65,6 +67,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
             },
         )
     })?;
+    bar.finish_and_clear();
     if let Some(path) = &args.report {
         let mut report = Report::new("kilter baseline");
         report.baselines(&BaselineSection {

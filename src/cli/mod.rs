@@ -165,6 +165,23 @@ pub struct Context {
     /// `--quiet`: no progress or summaries on stderr.
     pub quiet: bool,
     /// Whether to draw progress (stderr is a terminal and not quiet).
-    #[allow(dead_code)]
     pub progress: bool,
+}
+
+impl Context {
+    /// A progress bar over `rows` rows on stderr, hidden unless stderr is a terminal and
+    /// `--quiet` is off.
+    pub fn rows_bar(&self, rows: usize, what: &str) -> indicatif::ProgressBar {
+        if !self.progress {
+            return indicatif::ProgressBar::hidden();
+        }
+        let bar = indicatif::ProgressBar::new(rows as u64);
+        if let Ok(style) = indicatif::ProgressStyle::with_template(
+            "{msg} [{bar:30}] {pos}/{len} rows, {per_sec}, eta {eta}",
+        ) {
+            bar.set_style(style.progress_chars("=> "));
+        }
+        bar.set_message(what.to_string());
+        bar
+    }
 }
