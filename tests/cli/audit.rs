@@ -26,25 +26,12 @@ use kilter::audit::{AuditRecord, Verdict};
 use kilter::models::Model;
 
 use crate::families::{breast_cancer_standardized, network};
-use crate::harness::{kilter, listing, repo, temp_dir};
-
-fn write_csv(path: &Path, names: &[String], values: &Array2<f64>) {
-    let mut text = names.join(",");
-    text.push('\n');
-    for row in values.outer_iter() {
-        let cells: Vec<String> = row.iter().map(|v| format!("{v:?}")).collect();
-        text.push_str(&cells.join(","));
-        text.push('\n');
-    }
-    std::fs::write(path, text).unwrap();
-}
+use crate::harness::{
+    kilter, listing, one_layer_model, read_records, repo, temp_dir, write_csv, write_model,
+};
 
 fn read_audit(path: &Path) -> Vec<AuditRecord> {
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .map(|l| serde_json::from_str(l).expect("an audit record with only known fields"))
-        .collect()
+    read_records(path)
 }
 
 fn str(p: &Path) -> &str {
@@ -158,11 +145,10 @@ fn a_linear_model_on_independent_features_is_reliable() {
     let queries = values.slice(ndarray::s![..12, ..]).to_owned();
     prepare(dir.path(), &names, &values, &queries);
     let w = [0.9, -0.6, 0.4, 0.0, 1.3, -0.2];
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 6,
-        "layers": [{"weights": [w], "bias": [0.3], "activation": "identity"}]
-    });
-    std::fs::write(dir.path().join("linear.json"), model.to_string()).unwrap();
+    write_model(
+        &dir.path().join("linear.json"),
+        &one_layer_model("linear", &w, 0.3),
+    );
     let mean = values.mean_axis(Axis(0)).unwrap();
     // 16 draws per mask: on rows near the mean the attributions are small, and with fewer
     // draws the samplers' noise alone is a large share of them (checked below).
@@ -212,11 +198,10 @@ fn too_few_draws_are_reported_as_uncertainty_not_disagreement() {
     let (names, values) = breast_cancer_columns(6, true);
     let queries = values.slice(ndarray::s![..12, ..]).to_owned();
     prepare(dir.path(), &names, &values, &queries);
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 6,
-        "layers": [{"weights": [[0.9, -0.6, 0.4, 0.0, 1.3, -0.2]], "bias": [0.3], "activation": "identity"}]
-    });
-    std::fs::write(dir.path().join("linear.json"), model.to_string()).unwrap();
+    write_model(
+        &dir.path().join("linear.json"),
+        &one_layer_model("linear", &[0.9, -0.6, 0.4, 0.0, 1.3, -0.2], 0.3),
+    );
     audit(
         dir.path(),
         &["--model", "linear.json"],
@@ -451,11 +436,10 @@ fn bad_settings_are_refused_before_anything_is_written() {
     let (names, values) = breast_cancer_columns(4, false);
     let queries = values.slice(ndarray::s![..3, ..]).to_owned();
     prepare(dir.path(), &names, &values, &queries);
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 4,
-        "layers": [{"weights": [[1.0, 0.5, -0.5, 0.2]], "bias": [0.0], "activation": "identity"}]
-    });
-    std::fs::write(dir.path().join("m.json"), model.to_string()).unwrap();
+    write_model(
+        &dir.path().join("m.json"),
+        &one_layer_model("linear", &[1.0, 0.5, -0.5, 0.2], 0.0),
+    );
     let before = listing(dir.path());
     for (flags, message) in [
         (vec!["--sampler", "copula"], "--sampler"),
@@ -498,11 +482,10 @@ fn records_do_not_depend_on_the_thread_count() {
     let (names, values) = breast_cancer_columns(6, false);
     let queries = values.slice(ndarray::s![..20, ..]).to_owned();
     prepare(dir.path(), &names, &values, &queries);
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "logistic", "inputs": 6,
-        "layers": [{"weights": [[1.0, -0.5, 0.8, 0.3, -1.0, 0.4]], "bias": [0.2], "activation": "sigmoid"}]
-    });
-    std::fs::write(dir.path().join("m.json"), model.to_string()).unwrap();
+    write_model(
+        &dir.path().join("m.json"),
+        &one_layer_model("logistic", &[1.0, -0.5, 0.8, 0.3, -1.0, 0.4], 0.2),
+    );
     let run = |threads: &str, out: &str| {
         let status = Command::new(env!("CARGO_BIN_EXE_kilter"))
             .args([
@@ -563,11 +546,10 @@ fn csv_records_flatten_families_and_join_reasons() {
     prepare(dir.path(), &names, &values, &queries);
     let script = repo("tests/models/manifold_switching_model.py");
     let _ = script;
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 5,
-        "layers": [{"weights": [[1.0, 0.5, -0.5, 0.2, 0.1]], "bias": [0.0], "activation": "identity"}]
-    });
-    std::fs::write(dir.path().join("m.json"), model.to_string()).unwrap();
+    write_model(
+        &dir.path().join("m.json"),
+        &one_layer_model("linear", &[1.0, 0.5, -0.5, 0.2, 0.1], 0.0),
+    );
     audit(
         dir.path(),
         &["--model", "m.json"],
@@ -684,11 +666,10 @@ fn onnx_models_image_patches_and_named_groups() {
         .collect();
     std::fs::write(d.join("digits.csv"), head).unwrap();
     let weights: Vec<f64> = (0..64).map(|i| ((i * 5) % 7) as f64 / 7.0 - 0.4).collect();
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 64,
-        "layers": [{"weights": [weights], "bias": [0.0], "activation": "identity"}]
-    });
-    std::fs::write(d.join("pixels.json"), model.to_string()).unwrap();
+    write_model(
+        &d.join("pixels.json"),
+        &one_layer_model("linear", &weights, 0.0),
+    );
     kilter(
         d,
         &[
@@ -760,11 +741,10 @@ fn onnx_models_image_patches_and_named_groups() {
     let groups = serde_json::json!([[header[0], header[1]], [header[2]], [3, 4, 5]]);
     std::fs::write(d.join("groups.json"), groups.to_string()).unwrap();
     let weights: Vec<f64> = (0..13).map(|i| 0.1 * i as f64 - 0.5).collect();
-    let model = serde_json::json!({
-        "format": "kilter-model", "version": 1, "kind": "linear", "inputs": 13,
-        "layers": [{"weights": [weights], "bias": [0.0], "activation": "identity"}]
-    });
-    std::fs::write(d.join("wine_model.json"), model.to_string()).unwrap();
+    write_model(
+        &d.join("wine_model.json"),
+        &one_layer_model("linear", &weights, 0.0),
+    );
     kilter(
         d,
         &[

@@ -9,21 +9,21 @@
 
 use std::path::Path;
 
-use ndarray::{array, Array2, Axis};
+use ndarray::{array, Axis};
 
 use kilter::attribution::{integrated_gradients, QuadratureRule};
 use kilter::audit::BaselineRecord;
 use kilter::models::FiniteDifference;
 
 use crate::families::linear;
-use crate::harness::{kilter, repo, temp_dir};
+use crate::harness::{kilter, read_records, repo, temp_dir, write_csv};
+
+fn write_model(path: &Path, json: serde_json::Value) {
+    crate::harness::write_model(path, &json);
+}
 
 fn read_baselines(path: &Path) -> Vec<BaselineRecord> {
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .map(|l| serde_json::from_str(l).expect("a baseline record with only known fields"))
-        .collect()
+    read_records(path)
 }
 
 fn head(source: &Path, lines: usize, target: &Path) {
@@ -34,10 +34,6 @@ fn head(source: &Path, lines: usize, target: &Path) {
         .map(|l| format!("{l}\n"))
         .collect();
     std::fs::write(target, text).unwrap();
-}
-
-fn write_model(path: &Path, json: serde_json::Value) {
-    std::fs::write(path, json.to_string()).unwrap();
 }
 
 /// A smooth logistic-of-tanh network over `d` inputs, with fixed weights.
@@ -235,17 +231,6 @@ fn zero_can_be_recommended_on_standardized_data_centred_at_zero() {
         );
     }
     assert!(zero_wins >= 1, "zero recommended on no row of 20");
-}
-
-fn write_csv(path: &Path, names: &[String], values: &Array2<f64>) {
-    let mut text = names.join(",");
-    text.push('\n');
-    for row in values.outer_iter() {
-        let cells: Vec<String> = row.iter().map(|v| format!("{v:?}")).collect();
-        text.push_str(&cells.join(","));
-        text.push('\n');
-    }
-    std::fs::write(path, text).unwrap();
 }
 
 #[test]

@@ -11,15 +11,7 @@ use std::process::Command;
 
 use kilter::audit::{AuditRecord, BaselineRecord, Verdict};
 
-use crate::harness::{kilter, temp_dir};
-
-fn read<T: serde::de::DeserializeOwned>(path: &Path) -> Vec<T> {
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .map(|l| serde_json::from_str(l).expect("a record with only known fields"))
-        .collect()
-}
+use crate::harness::{kilter, read_records, temp_dir};
 
 fn segment_ids(dir: &Path) -> Vec<String> {
     std::fs::read_to_string(dir.join("segments.csv"))
@@ -44,7 +36,7 @@ fn the_demo_finds_what_it_was_built_to_show() {
         );
     }
     let ids = segment_ids(&out);
-    let audits: Vec<AuditRecord> = read(&out.join("pipe-audit.jsonl"));
+    let audits: Vec<AuditRecord> = read_records(&out.join("pipe-audit.jsonl"));
     assert_eq!(audits.len(), ids.len());
     let (mut misleading, mut typical) = (Vec::new(), Vec::new());
     for (record, id) in audits.iter().zip(&ids) {
@@ -87,9 +79,9 @@ fn the_demo_finds_what_it_was_built_to_show() {
         "most typical segments reliable"
     );
 
-    let baselines: Vec<BaselineRecord> = read(&out.join("pipe-baselines.jsonl"));
+    let baselines: Vec<BaselineRecord> = read_records(&out.join("pipe-baselines.jsonl"));
     assert_eq!(baselines.len(), ids.len());
-    let digits: Vec<AuditRecord> = read(&out.join("digit-audit.jsonl"));
+    let digits: Vec<AuditRecord> = read_records(&out.join("digit-audit.jsonl"));
     assert_eq!(digits.len(), 4);
     for r in &digits {
         assert_eq!(

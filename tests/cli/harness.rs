@@ -127,3 +127,42 @@ pub fn fit_wine(dir: &Path, extra: &[&str]) {
     args.extend_from_slice(extra);
     kilter(dir, &args).expect_status(0);
 }
+
+/// Writes a CSV with a header of `names`, numbers in full precision.
+pub fn write_csv(path: &Path, names: &[String], values: &ndarray::Array2<f64>) {
+    let mut text = names.join(",");
+    text.push('\n');
+    for row in values.outer_iter() {
+        let cells: Vec<String> = row.iter().map(|v| format!("{v:?}")).collect();
+        text.push_str(&cells.join(","));
+        text.push('\n');
+    }
+    std::fs::write(path, text).expect("write CSV");
+}
+
+/// Reads JSON Lines records into typed structs (unknown fields are refused by the types).
+pub fn read_records<T: serde::de::DeserializeOwned>(path: &Path) -> Vec<T> {
+    std::fs::read_to_string(path)
+        .expect("records file")
+        .lines()
+        .map(|l| serde_json::from_str(l).expect("a record with only known fields"))
+        .collect()
+}
+
+/// A kilter network file of one layer: `kind` linear (identity) or logistic (sigmoid).
+pub fn one_layer_model(kind: &str, weights: &[f64], bias: f64) -> serde_json::Value {
+    let activation = if kind == "logistic" {
+        "sigmoid"
+    } else {
+        "identity"
+    };
+    serde_json::json!({
+        "format": "kilter-model", "version": 1, "kind": kind, "inputs": weights.len(),
+        "layers": [{"weights": [weights], "bias": [bias], "activation": activation}]
+    })
+}
+
+/// Writes a model file.
+pub fn write_model(path: &Path, model: &serde_json::Value) {
+    std::fs::write(path, model.to_string()).expect("write model");
+}
