@@ -413,6 +413,22 @@ impl<'a> Auditor<'a> {
                 expected: format!("groups over the profile's {d} features"),
             });
         }
+        let m = groups.len();
+        let every = if m >= 63 { usize::MAX } else { (1usize << m) - 2 };
+        // A sampled design draws complementary pairs, and a pair separates one direction
+        // of the reduced regression only: m groups need m - 1 pairs at the very least;
+        // kilter asks for m + 1 so that random pairs rarely fall short.
+        let least = 2 * (m + 1);
+        if settings.samples < every && settings.samples < least {
+            return Err(Error::InvalidSetting {
+                flag: "--samples",
+                value: settings.samples.to_string(),
+                expected: format!(
+                    "at least {least} masks for {m} groups (masks come in complementary pairs; \
+                     a few hundred give steady estimates)"
+                ),
+            });
+        }
         let reference = profile.feature_distribution();
         let deletion = Deletion::new(settings.fill, reference.location());
         let rows = Arc::new(reference.rows().to_owned());

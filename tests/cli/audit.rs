@@ -447,6 +447,7 @@ fn bad_settings_are_refused_before_anything_is_written() {
         (vec!["--rule", "simpson"], "--rule"),
         (vec!["--baseline", "blurred"], "--baseline"),
         (vec!["--samples", "0"], "--samples"),
+        (vec!["--samples", "5"], "at least 10 masks for 4 groups"),
         (vec!["--steps", "1", "--rule", "trapezoid"], "--steps"),
         (vec!["--alpha", "1.5"], "--alpha"),
         (vec!["--target", "3"], "--target"),
