@@ -10,8 +10,9 @@
 //! - `one_core/attributions`: deletion, conditional-Gaussian replacement and integrated
 //!   gradients of one row (mask design, fills, model calls, least squares), on a
 //!   one-thread pool;
-//! - `one_core/audit_row`: the whole record of one row, off-manifold scoring of its
-//!   ~5,200 perturbed inputs, detectability tests and the reliability included;
+//! - `one_core/audit_row`: the whole record of one row: off-manifold scoring of its
+//!   ~5,000 masked inputs, the six default baselines ranked (their paths scored too),
+//!   detectability tests and the reliability;
 //! - `all_cores/audit_rows`: 16 rows audited in parallel on every core (throughput in rows).
 //!
 //! `cargo bench --bench families`

@@ -414,7 +414,11 @@ impl<'a> Auditor<'a> {
             });
         }
         let m = groups.len();
-        let every = if m >= 63 { usize::MAX } else { (1usize << m) - 2 };
+        let every = if m >= 63 {
+            usize::MAX
+        } else {
+            (1usize << m) - 2
+        };
         // A sampled design draws complementary pairs, and a pair separates one direction
         // of the reduced regression only: m groups need m - 1 pairs at the very least;
         // kilter asks for m + 1 so that random pairs rarely fall short.
