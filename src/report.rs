@@ -531,9 +531,11 @@ fn image_maps(
 
 fn candidate_table(candidates: &[crate::audit::BaselineCandidate]) -> String {
     let mut t = String::from(
-        "<table class=\"candidates\"><thead><tr><th>baseline</th><th>p</th>\
-         <th>path off data</th><th>f(baseline)</th><th>completeness gap</th>\
-         <th>agreement</th><th>score</th></tr></thead><tbody>",
+        "<table class=\"candidates\"><thead><tr><th>baseline</th><th title=\"p_combined of \
+         the baseline\">p</th><th title=\"share of path points off the data\">path off</th>\
+         <th title=\"model score at the baseline\">f(x')</th><th title=\"completeness gap\">\
+         gap</th><th title=\"Spearman against replacement\">agree</th><th>score</th></tr>\
+         </thead><tbody>",
     );
     for (i, c) in candidates.iter().enumerate() {
         let _ = write!(

@@ -102,6 +102,39 @@ pub struct Evidence {
     pub supplied_penalty: Option<f64>,
 }
 
+impl Evidence {
+    /// A short title for the largest penalty, for tables ("the masking fill misleads");
+    /// `None` when nothing lowered the score.
+    pub fn main_finding(&self) -> Option<&'static str> {
+        let penalties = [
+            (
+                self.deletion_penalty,
+                "deletion leaves the data and disagrees",
+            ),
+            (self.answer_penalty, "the model reacts to the fill itself"),
+            (
+                self.interpolation_penalty,
+                "the path leaves the data and disagrees",
+            ),
+            (self.completeness_penalty, "the path integral is incomplete"),
+            (
+                self.replacement_penalty,
+                "even in-distribution fills leave the data",
+            ),
+            (self.uncertainty_penalty, "estimates too noisy to judge"),
+            (
+                self.supplied_penalty.unwrap_or(0.0),
+                "the supplied explanation disagrees",
+            ),
+        ];
+        penalties
+            .iter()
+            .filter(|(p, _)| *p >= REASON_FROM)
+            .max_by(|a, b| a.0.total_cmp(&b.0))
+            .map(|(_, title)| *title)
+    }
+}
+
 /// What the assessment reads.
 pub struct Findings<'a> {
     pub families: &'a Families,
@@ -134,14 +167,22 @@ fn excess(rate: f64, alpha: f64) -> f64 {
     ((rate - alpha) / (1.0 - alpha)).clamp(0.0, 1.0)
 }
 
-fn severity(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> f64 {
+/// The three terms of a family's severity: the excess off-manifold share, the excess
+/// detectability over replacement's, and how much less typical than replacement's its
+/// inputs are (module docs).
+fn severity_terms(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> [f64; 3] {
     let r = &findings.families.replacement;
     let detect = match auc {
         Some(a) => (2.0 * (a - r.detectability_auc.unwrap_or(0.5).max(0.5))).clamp(0.0, 1.0),
         None => 0.0,
     };
     let typical = (1.0 - median_p / r.median_p.max(findings.alpha)).clamp(0.0, 1.0);
-    excess(rate, findings.alpha).max(detect).max(typical)
+    [excess(rate, findings.alpha), detect, typical]
+}
+
+fn severity(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> f64 {
+    let [a, b, c] = severity_terms(rate, median_p, auc, findings);
+    a.max(b).max(c)
 }
 
 fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
@@ -236,30 +277,42 @@ pub fn assess(findings: &Findings<'_>) -> Assessment {
         .supplied_values
         .map(|values| disagreement(values, &no_errors, &r.attribution, &r.standard_errors));
 
-    // Lead with the evidence that counted: the off-manifold share when it is the main
-    // term, otherwise how much less typical than replacement's the inputs are.
+    // Lead with the evidence that counted most, then give the other two measures.
     let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
-        let share_led = excess(rate, alpha) >= severity(rate, median_p, auc, findings) - 1e-12;
-        let mut text = if share_led {
+        let [share, detect, typical] = severity_terms(rate, median_p, auc, findings);
+        let auc_text = auc.map_or(String::new(), |a| {
             format!(
-                "{} of the {noun} fall outside the reference data (p < {alpha}), their median p \
-                 is {median_p:.3} against {:.3} for inputs drawn from the data",
-                percent(rate),
-                r.median_p
+                "a classifier tells them from reference rows with AUC {a:.2} (inputs drawn from \
+                 the data: {:.2})",
+                r.detectability_auc.unwrap_or(0.5)
             )
-        } else {
-            format!(
-                "the {noun} are less typical of the reference data than inputs drawn from it \
-                 (median p {median_p:.3} against {:.3}; {} of them fall outside it at p < {alpha})",
-                r.median_p,
+        });
+        let share_text = format!("{} of them fall outside it at p < {alpha}", percent(rate));
+        let median_text = format!(
+            "their median p is {median_p:.3} against {:.3} for inputs drawn from the data",
+            r.median_p
+        );
+        let mut text = if share >= detect && share >= typical {
+            let mut t = format!(
+                "{} of the {noun} fall outside the reference data (p < {alpha}); {median_text}",
                 percent(rate)
-            )
+            );
+            if !auc_text.is_empty() {
+                t.push_str(&format!("; {auc_text}"));
+            }
+            t
+        } else if detect >= typical {
+            format!("the {noun} are easy to tell from the reference data: {auc_text}; {share_text}")
+        } else {
+            let mut t = format!(
+                "the {noun} are less typical of the reference data than inputs drawn from it: \
+                 {median_text}; {share_text}"
+            );
+            if !auc_text.is_empty() {
+                t.push_str(&format!("; {auc_text}"));
+            }
+            t
         };
-        if let Some(a) = auc {
-            text.push_str(&format!(
-                ", and a classifier tells them from reference rows with AUC {a:.2}"
-            ));
-        }
         if rate == 0.0 && findings.p_floor >= alpha {
             text.push_str(&format!(
                 " (no input can reach p < {alpha} against this profile: its smallest p is \

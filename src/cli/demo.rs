@@ -274,27 +274,19 @@ fn print_summary(
 
 fn table(ids: &[String], records: &[AuditRecord]) {
     println!(
-        "  {:<28} {:>10} {:>11}  {:<10}  main finding",
+        "  {:<28} {:>10} {:>11}  {:<10}  main finding (full reasons in the report)",
         "input", "prediction", "reliability", "verdict"
     );
     for (r, id) in records.iter().zip(ids) {
-        let reason = r
-            .reasons
-            .first()
-            .map(String::as_str)
-            .unwrap_or("no finding lowered the score");
-        let short: String = reason.chars().take(70).collect();
-        let more = if reason.chars().count() > 70 {
-            "..."
-        } else {
-            ""
-        };
         println!(
-            "  {:<28} {:>10.3} {:>11.2}  {:<10}  {short}{more}",
+            "  {:<28} {:>10.3} {:>11.2}  {:<10}  {}",
             id,
             r.prediction,
             r.reliability,
-            r.verdict.as_str()
+            r.verdict.as_str(),
+            r.evidence
+                .main_finding()
+                .unwrap_or("nothing lowered the score")
         );
     }
 }
