@@ -773,3 +773,61 @@ fn onnx_models_image_patches_and_named_groups() {
         assert_eq!(r.families.deletion.attribution.len(), 3);
     }
 }
+
+#[test]
+fn failing_models_stop_the_audit_without_a_partial_file() {
+    // A model process that dies after two answers, one that answers NaN, and one that
+    // hangs: exit status 1, the cause named, and no records file left behind (SPEC: exit
+    // status; outputs written whole or not at all).
+    let dir = temp_dir();
+    let (names, values) = breast_cancer_columns(4, false);
+    let queries = values.slice(ndarray::s![..6, ..]).to_owned();
+    prepare(dir.path(), &names, &values, &queries);
+    let script = |body: &str| {
+        format!(
+            "import json, sys\nn = 0\nfor line in sys.stdin:\n    rows = json.loads(line)[\"inputs\"]\n    n += 1\n{body}\n"
+        )
+    };
+    let cases = [
+        (
+            "dies.py",
+            script(
+                "    if n > 2:\n        sys.exit(3)\n    print(json.dumps({\"outputs\": [[0.5, 0.5] for _ in rows]}), flush=True)",
+            ),
+            "exited without answering",
+        ),
+        (
+            "nan.py",
+            script(
+                "    out = [[0.5, 0.5] for _ in rows]\n    if n > 1:\n        out[0][1] = float('nan')\n    print(json.dumps({\"outputs\": out}), flush=True)",
+            ),
+            "answered wrongly",
+        ),
+        (
+            "hangs.py",
+            script(
+                "    if n > 1:\n        import time\n        time.sleep(30)\n    print(json.dumps({\"outputs\": [[0.5, 0.5] for _ in rows]}), flush=True)",
+            ),
+            "did not answer within 2 s",
+        ),
+    ];
+    for (file, body, fragment) in cases {
+        std::fs::write(dir.path().join(file), body).unwrap();
+        let command = format!("python3 {file}");
+        let run = audit(
+            dir.path(),
+            &["--model-cmd", &command, "--model-timeout", "2"],
+            &["--samples", "64", "--out", "a.jsonl", "--quiet"],
+        );
+        run.expect_status(1);
+        assert!(
+            run.stderr.to_lowercase().contains(fragment),
+            "{file}: stderr lacks {fragment:?}:\n{}",
+            run.stderr
+        );
+        assert!(
+            !dir.path().join("a.jsonl").exists(),
+            "{file} left a records file"
+        );
+    }
+}
