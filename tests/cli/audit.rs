@@ -831,3 +831,67 @@ fn failing_models_stop_the_audit_without_a_partial_file() {
         );
     }
 }
+
+#[test]
+fn bad_inputs_to_audit_are_refused_with_their_place_named() {
+    // Groups that do not fit, explanations with a bad cell, an input of other columns, a
+    // model of another width and a damaged profile: exit status 2, the file and place
+    // named, nothing written (SPEC: exit status; input files).
+    let dir = temp_dir();
+    let d = dir.path();
+    let (names, values) = breast_cancer_columns(4, false);
+    let queries = values.slice(ndarray::s![..3, ..]).to_owned();
+    prepare(d, &names, &values, &queries);
+    write_model(
+        &d.join("m.json"),
+        &one_layer_model("linear", &[1.0, 0.5, -0.5, 0.2], 0.0),
+    );
+    write_model(
+        &d.join("wide.json"),
+        &one_layer_model("linear", &[1.0; 5], 0.0),
+    );
+    std::fs::write(d.join("groups.json"), "[[0, 1], [7]]").unwrap();
+    let mut explanations = names.join(",");
+    explanations.push_str("\n1,2,3,4\n1,nan,3,4\n1,2,3,4\n");
+    std::fs::write(d.join("explained.csv"), explanations).unwrap();
+    write_csv(
+        &d.join("narrow.csv"),
+        &names[..3],
+        &values.slice(ndarray::s![..3, ..3]).to_owned(),
+    );
+    let profile = std::fs::read(d.join("p.kprofile")).unwrap();
+    std::fs::write(d.join("cut.kprofile"), &profile[..profile.len() / 2]).unwrap();
+    let before = listing(d);
+    let cases: [(&[&str], &[&str]); 5] = [
+        (
+            &["--model", "m.json", "--groups", "groups.json"],
+            &["groups.json", "7"],
+        ),
+        (
+            &["--model", "m.json", "--explanations", "explained.csv"],
+            &["explained.csv", "row 2", "mean_texture"],
+        ),
+        (&["--model", "wide.json"], &["takes 5 features", "has 4"]),
+        (
+            &["--model", "m.json", "--input", "narrow.csv"],
+            &["narrow.csv", "3 feature columns"],
+        ),
+        (
+            &["--model", "m.json", "--profile", "cut.kprofile"],
+            &["cut.kprofile", "truncated"],
+        ),
+    ];
+    for (flags, fragments) in cases {
+        let mut args = vec!["audit"];
+        if !flags.contains(&"--profile") {
+            args.extend(["--profile", "p.kprofile"]);
+        }
+        if !flags.contains(&"--input") {
+            args.extend(["--input", "queries.csv"]);
+        }
+        args.extend_from_slice(flags);
+        args.extend(["--out", "a.jsonl"]);
+        kilter(d, &args).expect_status(2).expect_stderr(fragments);
+        assert_eq!(listing(d), before, "{flags:?} left a file behind");
+    }
+}
