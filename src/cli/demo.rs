@@ -278,15 +278,17 @@ fn table(ids: &[String], records: &[AuditRecord]) {
         "input", "prediction", "reliability", "verdict"
     );
     for (r, id) in records.iter().zip(ids) {
+        let finding = match (r.evidence.main_finding(), r.verdict) {
+            (None, _) => "nothing lowered the score".to_string(),
+            (Some(title), Verdict::Reliable) => format!("minor: {title}"),
+            (Some(title), _) => title.to_string(),
+        };
         println!(
-            "  {:<28} {:>10.3} {:>11.2}  {:<10}  {}",
+            "  {:<28} {:>10.3} {:>11.2}  {:<10}  {finding}",
             id,
             r.prediction,
             r.reliability,
             r.verdict.as_str(),
-            r.evidence
-                .main_finding()
-                .unwrap_or("nothing lowered the score")
         );
     }
 }
