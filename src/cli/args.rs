@@ -36,7 +36,8 @@ pub enum Command {
     /// behaves, and how its attribution agrees with the in-distribution one.
     #[command(after_help = BASELINE_EXAMPLE)]
     Baseline(Box<BaselineArgs>),
-    /// Fit and score kilter's invented example scenario, masked inputs included.
+    /// Run the whole job on kilter's invented scenario: train a model, fit, audit, rank
+    /// baselines and write a report.
     #[command(after_help = DEMO_EXAMPLE)]
     Demo(DemoArgs),
 }
