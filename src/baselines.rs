@@ -27,6 +27,7 @@ use crate::error::{Error, Result};
 use crate::groups::Groups;
 use crate::models::Model;
 use crate::neighbours::{Exclusion, NeighbourIndex};
+use crate::perturbation::masking::kept_features;
 use crate::profile::Profile;
 
 /// Draws of `uniform:N` and `reference:N` in the default candidate list.
@@ -283,17 +284,11 @@ impl BaselineMaker {
             }
         };
         let mut out = raw;
-        let mut grouped = vec![false; d];
-        for g in 0..groups.len() {
-            for &i in groups.members(g) {
-                grouped[i] = true;
-            }
-        }
+        // The features kept when every group is masked are exactly those in no group.
+        let ungrouped = kept_features(groups, &vec![false; groups.len()]);
         for mut row in out.outer_iter_mut() {
-            for i in 0..d {
-                if !grouped[i] {
-                    row[i] = input[i];
-                }
+            for i in (0..d).filter(|&i| ungrouped[i]) {
+                row[i] = input[i];
             }
         }
         Ok(out)

@@ -826,15 +826,7 @@ fn off_manifold(p: &[f64], alpha: f64) -> (f64, f64) {
         return (0.0, 1.0);
     }
     let rate = p.iter().filter(|&&v| v < alpha).count() as f64 / p.len() as f64;
-    let mut sorted = p.to_vec();
-    sorted.sort_by(f64::total_cmp);
-    let n = sorted.len();
-    let median = if n % 2 == 1 {
-        sorted[n / 2]
-    } else {
-        0.5 * (sorted[n / 2 - 1] + sorted[n / 2])
-    };
-    (rate, median)
+    (rate, crate::stats::median(p).expect("not empty"))
 }
 
 /// How differently the model answers the same masks under deletion and replacement: the

@@ -280,6 +280,6 @@ impl Summary {
                 let _ = writeln!(stderr, "    row {row}: {score:.2}  {reason}");
             }
         }
-        let _ = writeln!(stderr, "  {}", super::CAUTION);
+        let _ = writeln!(stderr, "  {}", kilter::report::CAUTION);
     }
 }

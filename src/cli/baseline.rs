@@ -104,7 +104,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
             candidates.len(),
             listed.join(", ")
         );
-        let _ = writeln!(stderr, "  {}", super::CAUTION);
+        let _ = writeln!(stderr, "  {}", kilter::report::CAUTION);
     }
     Ok(())
 }

@@ -155,11 +155,6 @@ pub fn record_io(error: io::Error) -> Error {
     Error::io("<records>", error)
 }
 
-/// The caution printed under every audit and baseline summary (and in every report).
-pub const CAUTION: &str =
-    "kilter's scores are diagnostics, not guarantees; decisions about people \
-     defer to the applicable regulations and your organisation's model-risk practice";
-
 /// What every command needs to know about how it was run.
 pub struct Context {
     /// `--quiet`: no progress or summaries on stderr.

@@ -93,16 +93,7 @@ impl FeatureDistribution {
         self.rows
             .columns()
             .into_iter()
-            .map(|c| {
-                let mut v = c.to_vec();
-                v.sort_by(f64::total_cmp);
-                let n = v.len();
-                if n % 2 == 1 {
-                    v[n / 2]
-                } else {
-                    0.5 * (v[n / 2 - 1] + v[n / 2])
-                }
-            })
+            .map(|c| crate::stats::median(&c.to_vec()).expect("fitted rows exist"))
             .collect()
     }
 }

@@ -75,11 +75,12 @@ pub fn detectability_auc(
 fn fit_logistic(x: &Array2<f64>, y: &[f64]) -> Option<Array1<f64>> {
     let p = x.ncols();
     let mut beta = Array1::<f64>::zeros(p);
+    let y = Array1::from(y.to_vec());
     for _ in 0..ITERATIONS {
         let eta = x.dot(&beta);
         let prob = eta.mapv(|e| 1.0 / (1.0 + (-e).exp()));
         let weight = prob.mapv(|q| (q * (1.0 - q)).max(1e-10));
-        let mut gradient = x.t().dot(&(&Array1::from(y.to_vec()) - &prob));
+        let mut gradient = x.t().dot(&(&y - &prob));
         let weighted = x * &weight.view().insert_axis(Axis(1));
         let mut hessian = x.t().dot(&weighted);
         for j in 1..p {
