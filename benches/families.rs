@@ -66,7 +66,7 @@ fn bench(c: &mut Criterion) {
         .build()
         .unwrap();
 
-    let distribution = profile.feature_distribution();
+    let distribution = profile.feature_distribution().unwrap();
     let deletion = Deletion::new(FillValue::Zero, distribution.location());
     let gaussian = ConditionalGaussian::new(
         distribution.location().clone(),

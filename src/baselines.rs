@@ -201,19 +201,19 @@ pub struct BaselineMaker {
 
 impl BaselineMaker {
     /// From the profile's fitted rows.
-    pub fn new(profile: &Profile, image: Option<ImageShape>) -> BaselineMaker {
-        let reference = profile.feature_distribution();
+    pub fn new(profile: &Profile, image: Option<ImageShape>) -> Result<BaselineMaker> {
+        let reference = profile.feature_distribution()?;
         let rows = reference.rows();
         let fold = |init: f64, pick: fn(f64, f64) -> f64| {
             rows.fold_axis(Axis(0), init, |&acc, &v| pick(acc, v))
         };
-        BaselineMaker {
+        Ok(BaselineMaker {
             mean: reference.location().clone(),
             median: reference.median(),
             minimum: fold(f64::INFINITY, f64::min),
             maximum: fold(f64::NEG_INFINITY, f64::max),
             image,
-        }
+        })
     }
 
     /// Checks that a candidate applies (blur needs an image).
@@ -243,7 +243,7 @@ impl BaselineMaker {
     ) -> Result<Array2<f64>> {
         self.check(spec)?;
         let d = input.len();
-        let reference = profile.feature_distribution().rows();
+        let reference = profile.feature_distribution()?.rows();
         let raw: Array2<f64> = match spec {
             BaselineSpec::Zero => Array2::zeros((1, d)),
             BaselineSpec::Mean => self.mean.clone().insert_axis(Axis(0)),

@@ -173,6 +173,11 @@ pub enum Error {
     #[error("{path}: the file has no data rows")]
     NoRows { path: PathBuf },
 
+    /// A profile loaded in part was asked for a part it does not hold (a program error,
+    /// not a user's).
+    #[error("the profile in memory lacks {missing}")]
+    PartialProfile { missing: &'static str },
+
     /// An `.npy` file cannot be used.
     #[error("{path}: {detail}")]
     Npy { path: PathBuf, detail: String },
@@ -299,7 +304,8 @@ impl Error {
             | Error::ModelAnswer { .. }
             | Error::ModelReported { .. }
             | Error::ModelFailed { .. }
-            | Error::ModelTimeout { .. } => 1,
+            | Error::ModelTimeout { .. }
+            | Error::PartialProfile { .. } => 1,
             Error::BelowBar { .. } => 3,
             _ => 2,
         }

@@ -433,7 +433,7 @@ impl<'a> Auditor<'a> {
                 ),
             });
         }
-        let reference = profile.feature_distribution();
+        let reference = profile.feature_distribution()?;
         let deletion = Deletion::new(settings.fill, reference.location());
         let rows = Arc::new(reference.rows().to_owned());
         let replacement: Box<dyn PerturbationFamily> = match settings.sampler {
@@ -447,7 +447,7 @@ impl<'a> Auditor<'a> {
             }
             Sampler::Marginal => Box::new(MarginalRows::new(rows, settings.draws)),
         };
-        let baselines = BaselineMaker::new(profile, settings.image);
+        let baselines = BaselineMaker::new(profile, settings.image)?;
         match &settings.baseline {
             BaselineChoice::Fixed(spec) => baselines.check(spec)?,
             BaselineChoice::Best(list) => {
@@ -859,18 +859,17 @@ fn answer_gap(deleted: &MaskedGame, replaced: &MaskedGame) -> f64 {
 
 /// Reads supplied explanations: one row per input row, one column per group.
 pub fn check_supplied(
-    explanations: &Array2<f64>,
+    found_rows: usize,
+    found_columns: usize,
     rows: usize,
     groups: usize,
     path: &std::path::Path,
 ) -> Result<()> {
-    if explanations.nrows() != rows || explanations.ncols() != groups {
+    if found_rows != rows || found_columns != groups {
         return Err(Error::InputMismatch {
             path: path.to_path_buf(),
             detail: format!(
-                "holds {} rows of {} values; the audit needs one row per input row ({rows}) and one column per group ({groups})",
-                explanations.nrows(),
-                explanations.ncols()
+                "holds {found_rows} rows of {found_columns} values; the audit needs one row per input row ({rows}) and one column per group ({groups})"
             ),
         });
     }

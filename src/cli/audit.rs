@@ -3,12 +3,12 @@
 
 use std::io::Write;
 
-use ndarray::Axis;
+use ndarray::{concatenate, s, Array2, Axis};
 use rayon::prelude::*;
 
 use kilter::audit::{check_supplied, AuditRecord, AuditSettings, Auditor, Verdict};
 use kilter::baselines::{BaselineChoice, ImageShape};
-use kilter::corpus::read_matrix;
+use kilter::corpus::{CsvOptions, MatrixChunks};
 use kilter::groups::Groups;
 use kilter::perturbation::FillValue;
 use kilter::profile::Profile;
@@ -17,7 +17,7 @@ use kilter::{Error, Result};
 use super::args::{AttributionArgs, AuditArgs};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
-use super::{check_report_path, record_io, write_report, Context, RecordDestination};
+use super::{check_report_path, write_report, Context, RecordDestination};
 use kilter::report::{AuditSection, Report};
 
 /// Rows audited together: each is a few thousand model calls, so a handful per core keeps
@@ -146,45 +146,54 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
 
     let profile = Profile::load(&args.profile)?;
     let options = csv_options(&args.columns);
-    let input = read_matrix(&args.input, &options)?;
-    profile.check_input(&input)?;
+    let mut input = MatrixChunks::open(&args.input, &options)?;
+    profile.check_input(input.header())?;
     let names = profile.feature_names();
     let groups = groups_for(a.groups.as_deref(), image, a.patch, names)?;
-    let supplied = match &args.explanations {
+    let mut supplied = match &args.explanations {
         None => None,
-        Some(path) => {
-            let m = read_matrix(path, &options)?;
-            check_supplied(&m.values, input.rows(), groups.len(), path)?;
-            Some(m.values)
-        }
+        Some(path) => Some(SuppliedRows::open(path, &options, groups.len())?),
     };
     let model = load_model(&source, input.columns())?;
     let auditor = Auditor::new(&profile, model.as_ref(), groups, settings)?;
 
-    let rows = input.rows();
     let mut summary = Summary::default();
-    let mut kept: Vec<AuditRecord> = Vec::new();
-    let bar = context.rows_bar(input.rows(), "auditing");
+    // The report draws images of the audited rows, so it keeps them.
+    let mut kept_inputs: Vec<f64> = Vec::new();
+    let mut emitter = context.emitter(input.rows_hint(), "auditing", args.report.is_some());
     destination.write(|writer| {
-        in_waves(
-            rows,
-            |r| {
-                let own = supplied.as_ref().map(|s| s.row(r).to_vec());
-                auditor.audit_row(r, input.values.index_axis(Axis(0), r), own.as_deref())
-            },
-            |record: AuditRecord| {
-                summary.add(&record);
-                writer.write(&record).map_err(record_io)?;
-                bar.inc(1);
-                if args.report.is_some() {
-                    kept.push(record);
-                }
-                Ok(())
-            },
-        )
+        while let Some(block) = input.next_chunk()? {
+            let first_row = input.rows_done() - block.nrows();
+            let own = match supplied.as_mut() {
+                Some(s) => Some(s.take(block.nrows(), first_row)?),
+                None => None,
+            };
+            if args.report.is_some() && image.is_some() {
+                kept_inputs.extend(block.iter());
+            }
+            in_waves(
+                block.nrows(),
+                |i| {
+                    let own = own.as_ref().map(|o| o.row(i).to_vec());
+                    auditor.audit_row(first_row + i, block.row(i), own.as_deref())
+                },
+                |record: AuditRecord| {
+                    summary.add(&record);
+                    emitter.emit(writer, record)
+                },
+            )?;
+        }
+        match supplied {
+            Some(s) => s.finish(input.rows_done()),
+            None => Ok(()),
+        }
     })?;
-    bar.finish_and_clear();
+    let rows = input.rows_done();
+    let kept = emitter.finish();
     if let Some(path) = &args.report {
+        let width = auditor.groups().features();
+        let kept_images = Array2::from_shape_vec((kept_inputs.len() / width, width), kept_inputs)
+            .expect("whole rows were kept");
         let mut report = Report::new("kilter audit");
         report.audit(&AuditSection {
             title: format!("Audit of {}", args.input.display()),
@@ -192,7 +201,7 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
             groups: auditor.groups(),
             records: &kept,
             labels: None,
-            image: image.map(|shape| (shape, &input.values)),
+            image: image.map(|shape| (shape, &kept_images)),
         });
         write_report(path, &report.finish())?;
         if !context.quiet {
@@ -219,6 +228,74 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
         }
     }
     Ok(())
+}
+
+/// Supplied explanations, read alongside the input a block at a time: one row per input
+/// row, one column per group.
+struct SuppliedRows {
+    chunks: MatrixChunks,
+    path: std::path::PathBuf,
+    /// Rows read but not yet handed out.
+    pending: Array2<f64>,
+    groups: usize,
+}
+
+impl SuppliedRows {
+    fn open(path: &std::path::Path, options: &CsvOptions, groups: usize) -> Result<Self> {
+        let chunks = MatrixChunks::open(path, options)?;
+        if chunks.columns() != groups {
+            let rows = chunks.rows_hint().unwrap_or(0);
+            check_supplied(rows, chunks.columns(), rows, groups, path)?;
+        }
+        Ok(SuppliedRows {
+            chunks,
+            path: path.to_path_buf(),
+            pending: Array2::zeros((0, groups)),
+            groups,
+        })
+    }
+
+    /// The explanations of the `n` input rows starting at `first_row`.
+    fn take(&mut self, n: usize, first_row: usize) -> Result<Array2<f64>> {
+        while self.pending.nrows() < n {
+            match self.chunks.next_chunk()? {
+                Some(more) => {
+                    self.pending = concatenate![Axis(0), self.pending, more];
+                }
+                None => {
+                    let found = self.chunks.rows_done();
+                    return Err(Error::InputMismatch {
+                        path: self.path.clone(),
+                        detail: format!(
+                            "holds {found} rows; the input has at least {} (one row of explanations per input row)",
+                            first_row + n
+                        ),
+                    });
+                }
+            }
+        }
+        let taken = self.pending.slice(s![..n, ..]).to_owned();
+        self.pending = self.pending.slice(s![n.., ..]).to_owned();
+        Ok(taken)
+    }
+
+    /// After the last input row: no explanation rows may be left over.
+    fn finish(mut self, input_rows: usize) -> Result<()> {
+        let mut extra = self.pending.nrows();
+        while let Some(more) = self.chunks.next_chunk()? {
+            extra += more.nrows();
+        }
+        if extra > 0 {
+            check_supplied(
+                self.chunks.rows_done(),
+                self.groups,
+                input_rows,
+                self.groups,
+                &self.path,
+            )?;
+        }
+        Ok(())
+    }
 }
 
 /// One line on how the audit was run.

@@ -4,11 +4,9 @@
 use std::collections::BTreeMap;
 use std::io::Write;
 
-use ndarray::Axis;
-
 use kilter::audit::{Auditor, BaselineRecord};
 use kilter::baselines::{parse_candidates, BaselineChoice};
-use kilter::corpus::read_matrix;
+use kilter::corpus::MatrixChunks;
 use kilter::perturbation::FillValue;
 use kilter::profile::Profile;
 use kilter::Result;
@@ -17,7 +15,7 @@ use super::args::BaselineArgs;
 use super::audit::{attribution_settings, groups_for, image_shape, in_waves};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
-use super::{check_report_path, record_io, write_report, Context, RecordDestination};
+use super::{check_report_path, write_report, Context, RecordDestination};
 use kilter::report::{BaselineSection, Report};
 
 pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
@@ -41,33 +39,35 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     check_report_path(args.report.as_deref(), &inputs, args.out.as_deref())?;
 
     let profile = Profile::load(&args.profile)?;
-    let input = read_matrix(&args.input, &csv_options(&args.columns))?;
-    profile.check_input(&input)?;
+    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
+    profile.check_input(input.header())?;
     let groups = groups_for(a.groups.as_deref(), image, a.patch, profile.feature_names())?;
     let model = load_model(&source, input.columns())?;
     let auditor = Auditor::new(&profile, model.as_ref(), groups, settings)?;
 
     let mut wins: BTreeMap<String, usize> = BTreeMap::new();
     let mut rows = 0;
-    let mut kept: Vec<BaselineRecord> = Vec::new();
-    let bar = context.rows_bar(input.rows(), "ranking baselines");
+    let mut emitter = context.emitter(
+        input.rows_hint(),
+        "ranking baselines",
+        args.report.is_some(),
+    );
     destination.write(|writer| {
-        in_waves(
-            input.rows(),
-            |r| auditor.baseline_row(r, input.values.index_axis(Axis(0), r), &candidates),
-            |record: BaselineRecord| {
-                *wins.entry(record.recommended.clone()).or_default() += 1;
-                rows += 1;
-                writer.write(&record).map_err(record_io)?;
-                bar.inc(1);
-                if args.report.is_some() {
-                    kept.push(record);
-                }
-                Ok(())
-            },
-        )
+        while let Some(block) = input.next_chunk()? {
+            let first_row = input.rows_done() - block.nrows();
+            in_waves(
+                block.nrows(),
+                |i| auditor.baseline_row(first_row + i, block.row(i), &candidates),
+                |record: BaselineRecord| {
+                    *wins.entry(record.recommended.clone()).or_default() += 1;
+                    rows += 1;
+                    emitter.emit(writer, record)
+                },
+            )?;
+        }
+        Ok(())
     })?;
-    bar.finish_and_clear();
+    let kept = emitter.finish();
     if let Some(path) = &args.report {
         let mut report = Report::new("kilter baseline");
         report.baselines(&BaselineSection {

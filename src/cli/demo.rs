@@ -95,7 +95,7 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
         .fit(&reference)?
         .save(&profile_path)?;
     let profile = Profile::load(&profile_path)?;
-    profile.check_input(&new)?;
+    profile.check_input(new.header())?;
 
     let groups = Groups::singletons(profile.feature_names());
     let settings = AuditSettings {

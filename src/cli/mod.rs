@@ -166,17 +166,60 @@ pub struct Context {
 impl Context {
     /// A progress bar over `rows` rows on stderr, hidden unless stderr is a terminal and
     /// `--quiet` is off.
-    pub fn rows_bar(&self, rows: usize, what: &str) -> indicatif::ProgressBar {
+    /// Where a command's finished records go: see [`Emitter`].
+    pub fn emitter<R>(&self, rows: Option<usize>, what: &str, keep: bool) -> Emitter<R> {
+        Emitter {
+            bar: self.rows_bar(rows, what),
+            keep,
+            kept: Vec::new(),
+        }
+    }
+
+    fn rows_bar(&self, rows: Option<usize>, what: &str) -> indicatif::ProgressBar {
         if !self.progress {
             return indicatif::ProgressBar::hidden();
         }
-        let bar = indicatif::ProgressBar::new(rows as u64);
-        if let Ok(style) = indicatif::ProgressStyle::with_template(
-            "{msg} [{bar:30}] {pos}/{len} rows, {per_sec}, eta {eta}",
-        ) {
+        // A CSV input's length is known only at its end: then the bar just counts.
+        let (bar, template) = match rows {
+            Some(rows) => (
+                indicatif::ProgressBar::new(rows as u64),
+                "{msg} [{bar:30}] {pos}/{len} rows, {per_sec}, eta {eta}",
+            ),
+            None => (
+                indicatif::ProgressBar::no_length(),
+                "{msg} {pos} rows, {per_sec}",
+            ),
+        };
+        if let Ok(style) = indicatif::ProgressStyle::with_template(template) {
             bar.set_style(style.progress_chars("=> "));
         }
         bar.set_message(what.to_string());
         bar
+    }
+}
+
+/// Each finished record goes to the records file, moves the progress bar on, and is kept
+/// in memory when a report will draw it.
+pub struct Emitter<R> {
+    bar: indicatif::ProgressBar,
+    keep: bool,
+    /// The records kept for the report.
+    pub kept: Vec<R>,
+}
+
+impl<R: serde::Serialize> Emitter<R> {
+    pub fn emit(&mut self, writer: &mut RecordWriter<&mut dyn Write>, record: R) -> Result<()> {
+        writer.write(&record).map_err(record_io)?;
+        self.bar.inc(1);
+        if self.keep {
+            self.kept.push(record);
+        }
+        Ok(())
+    }
+
+    /// Clears the progress bar and hands over the kept records.
+    pub fn finish(self) -> Vec<R> {
+        self.bar.finish_and_clear();
+        self.kept
     }
 }

@@ -4,7 +4,7 @@
 use ndarray::Axis;
 use serde::Serialize;
 
-use kilter::corpus::read_matrix;
+use kilter::corpus::MatrixChunks;
 use kilter::models::{Model, ModelSource};
 use kilter::{Error, Result};
 
@@ -49,22 +49,21 @@ pub fn run(args: PredictArgs, _context: &Context) -> Result<()> {
     let mut inputs = source.input_paths();
     inputs.push(&args.input);
     let destination = RecordDestination::new(args.out.as_deref(), &inputs)?;
-    let input = read_matrix(&args.input, &csv_options(&args.columns))?;
+    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
     let model = load_model(&source, input.columns())?;
     let chunk_rows = model.preferred_batch().max(1024);
     destination.write(|writer| {
-        for (c, chunk) in input
-            .values
-            .axis_chunks_iter(Axis(0), chunk_rows)
-            .enumerate()
-        {
-            let outputs = model.predict(chunk)?;
-            for (i, row) in outputs.outer_iter().enumerate() {
-                let record = PredictRecord {
-                    row: c * chunk_rows + i,
-                    outputs: row.as_slice().expect("fresh outputs are contiguous"),
-                };
-                writer.write(&record).map_err(record_io)?;
+        while let Some(block) = input.next_chunk()? {
+            let first_row = input.rows_done() - block.nrows();
+            for (c, chunk) in block.axis_chunks_iter(Axis(0), chunk_rows).enumerate() {
+                let outputs = model.predict(chunk)?;
+                for (i, row) in outputs.outer_iter().enumerate() {
+                    let record = PredictRecord {
+                        row: first_row + c * chunk_rows + i,
+                        outputs: row.as_slice().expect("fresh outputs are contiguous"),
+                    };
+                    writer.write(&record).map_err(record_io)?;
+                }
             }
         }
         Ok(())

@@ -2,8 +2,8 @@
 
 use ndarray::Axis;
 
-use kilter::corpus::read_matrix;
-use kilter::profile::{validate_alpha, Profile};
+use kilter::corpus::MatrixChunks;
+use kilter::profile::{validate_alpha, Profile, ProfileScope};
 use kilter::Result;
 
 use super::args::ScoreArgs;
@@ -16,17 +16,18 @@ const CHUNK_ROWS: usize = 8192;
 pub fn run(args: ScoreArgs, _context: &Context) -> Result<()> {
     validate_alpha(args.alpha)?;
     let destination = RecordDestination::new(args.out.as_deref(), &[&args.profile, &args.input])?;
-    let profile = Profile::load(&args.profile)?;
-    let input = read_matrix(&args.input, &csv_options(&args.columns))?;
-    profile.check_input(&input)?;
+    let profile = Profile::load_scoped(&args.profile, ProfileScope::Scoring)?;
+    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
+    profile.check_input(input.header())?;
+    // Records go out as each block of the input is scored, so memory holds the profile
+    // and one block, whatever the input's length.
     destination.write(|writer| {
-        for (c, chunk) in input
-            .values
-            .axis_chunks_iter(Axis(0), CHUNK_ROWS)
-            .enumerate()
-        {
-            for record in profile.score(chunk, c * CHUNK_ROWS, args.alpha)? {
-                writer.write(&record).map_err(record_io)?;
+        while let Some(block) = input.next_chunk()? {
+            let first_row = input.rows_done() - block.nrows();
+            for (c, chunk) in block.axis_chunks_iter(Axis(0), CHUNK_ROWS).enumerate() {
+                for record in profile.score(chunk, first_row + c * CHUNK_ROWS, args.alpha)? {
+                    writer.write(&record).map_err(record_io)?;
+                }
             }
         }
         Ok(())

@@ -1,16 +1,18 @@
 //! CSV input: a header row, numeric feature columns, optional id and label columns that
 //! are dropped. Quoted fields, a UTF-8 byte-order mark and CRLF line ends are accepted.
 //!
-//! Records are read sequentially (CSV quoting makes the file impossible to split blindly)
-//! and parsed to numbers in parallel batches, which keeps a million-row file in seconds.
+//! The file is read in blocks of a few megabytes, so memory stays bounded whatever its
+//! length. While no quote character has been seen, every line is a record and every comma
+//! a separator, so a block can be cut at line ends and its lines parsed in parallel. The
+//! first block holding a quote hands the rest of the file, from that record boundary on,
+//! to the full CSV reader.
 
-use std::path::Path;
+use std::io::{self, Cursor, Read};
+use std::path::{Path, PathBuf};
 
 use csv::ByteRecord;
-use ndarray::Array2;
 use rayon::prelude::*;
 
-use super::FeatureMatrix;
 use crate::error::{CellFault, ColumnRef, Error, HeaderFault, Result};
 
 /// Columns to drop from a CSV file before it becomes a matrix.
@@ -22,204 +24,326 @@ pub struct CsvOptions {
     pub label_columns: Vec<String>,
 }
 
-/// Rows parsed per parallel batch: large enough to amortise the hand-off, small enough
-/// that the raw records of one batch stay in cache-sized memory.
-const BATCH_ROWS: usize = 16_384;
-/// Bytes per parallel task of the unquoted fast path.
-const FAST_CHUNK_BYTES: usize = 4 << 20;
+/// Bytes read per block: the unit of memory the reader holds besides the rows it returns.
+const BLOCK_BYTES: usize = 16 << 20;
+/// Bytes per parallel task within a block.
+const TASK_BYTES: usize = 1 << 20;
+/// Records per chunk once the full CSV reader has taken over.
+const QUOTED_CHUNK_ROWS: usize = 16_384;
 
-pub(super) fn read_csv(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
-    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(&bytes);
-    // Without a quote character anywhere, every line is a record and every comma a
-    // separator, so the file can be cut at line ends and parsed in parallel throughout.
-    // Quoted files go through the full CSV reader.
-    let (names, features, rows, values) = if memchr::memchr(b'"', bytes).is_none() {
-        read_unquoted(path, bytes, options)?
-    } else {
-        read_quoted(path, bytes, options)?
-    };
-    if rows == 0 {
-        return Err(Error::NoRows {
-            path: path.to_path_buf(),
-        });
-    }
-    let feature_names: Vec<String> = features.iter().map(|&c| names[c].clone()).collect();
-    let values = Array2::from_shape_vec((rows, features.len()), values)
-        .expect("row-major buffer has rows x features values");
-    Ok(FeatureMatrix {
-        names: feature_names,
-        named: true,
-        values,
-        source: path.to_path_buf(),
-    })
+type Source = Box<dyn Read + Send>;
+
+/// A CSV matrix read a block at a time.
+pub(super) struct CsvChunks {
+    columns: Columns,
+    /// Bytes per block ([`BLOCK_BYTES`]; small in tests, to cross block edges).
+    block_bytes: usize,
+    rows_done: usize,
+    mode: Mode,
 }
 
-/// Header names, feature column indices, row count and row-major values.
-type Parsed = (Vec<String>, Vec<usize>, usize, Vec<f64>);
-
-fn read_quoted(path: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Parsed> {
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .from_reader(bytes);
-    let mut header = ByteRecord::new();
-    let has_header = reader
-        .read_byte_record(&mut header)
-        .map_err(|e| csv_error(path, e))?;
-    if !has_header {
-        return Err(header_error(path, HeaderFault::Missing));
-    }
-    let names = header_names(path, header.iter())?;
-    let features = select_features(path, &names, options)?;
-    let width = names.len();
-
-    let mut values: Vec<f64> = Vec::new();
-    let mut batch: Vec<ByteRecord> = Vec::with_capacity(BATCH_ROWS);
-    let mut rows_done = 0usize;
-    loop {
-        batch.clear();
-        let mut record = ByteRecord::new();
-        while batch.len() < BATCH_ROWS
-            && reader
-                .read_byte_record(&mut record)
-                .map_err(|e| csv_error(path, e))?
-        {
-            batch.push(std::mem::take(&mut record));
-        }
-        if batch.is_empty() {
-            break;
-        }
-        // Parsed in parallel, errors reported in file order.
-        let parsed: Vec<Result<Vec<f64>>> = batch
-            .par_iter()
-            .enumerate()
-            .map(|(i, record)| {
-                parse_cells(
-                    path,
-                    record.iter(),
-                    rows_done + i + 1,
-                    width,
-                    &features,
-                    &names,
-                )
-            })
-            .collect();
-        values.reserve(parsed.len() * features.len());
-        for row in parsed {
-            values.extend_from_slice(&row?);
-        }
-        rows_done += batch.len();
-        if batch.len() < BATCH_ROWS {
-            break;
-        }
-    }
-    Ok((names, features, rows_done, values))
+/// What parsing a row needs, shared by the parallel tasks.
+struct Columns {
+    path: PathBuf,
+    /// Every header name, dropped columns included.
+    names: Vec<String>,
+    /// Positions of the feature columns among `names`.
+    features: Vec<usize>,
 }
 
-fn read_unquoted(path: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Parsed> {
-    let header_end = memchr::memchr(b'\n', bytes).unwrap_or(bytes.len());
-    let header_line = trim_cr(&bytes[..header_end]);
-    if header_line.is_empty() && header_end >= bytes.len() {
-        return Err(header_error(path, HeaderFault::Missing));
-    }
-    let names = header_names(path, header_line.split(|&b| b == b','))?;
-    let features = select_features(path, &names, options)?;
-    let width = names.len();
-    let body = &bytes[(header_end + 1).min(bytes.len())..];
+enum Mode {
+    /// No quote seen yet: `pending` holds bytes read but not parsed, starting at a line.
+    Lines {
+        source: Source,
+        pending: Vec<u8>,
+        at_end: bool,
+    },
+    /// The full CSV reader, over what was pending followed by the rest of the source.
+    Quoted(Box<csv::Reader<io::Chain<Cursor<Vec<u8>>, Source>>>),
+    /// Switching modes.
+    Done,
+}
 
-    // Cut the body into chunks that end at line ends.
-    let mut chunks = Vec::new();
-    let mut start = 0;
-    while start < body.len() {
-        let mut end = (start + FAST_CHUNK_BYTES).min(body.len());
-        if end < body.len() {
-            end = match memchr::memchr(b'\n', &body[end..]) {
-                Some(offset) => end + offset + 1,
-                None => body.len(),
+impl CsvChunks {
+    /// Reads the header; the rows come with [`CsvChunks::next_chunk`].
+    pub(super) fn new(path: &Path, mut source: Source, options: &CsvOptions) -> Result<Self> {
+        let mut pending = Vec::new();
+        let mut at_end = false;
+        // Enough bytes to hold the header line (and the BOM before it).
+        loop {
+            if memchr::memchr(b'\n', &pending).is_some() || at_end {
+                break;
+            }
+            at_end = fill(path, &mut source, &mut pending, TASK_BYTES)?;
+        }
+        if pending.starts_with(b"\xEF\xBB\xBF") {
+            pending.drain(..3);
+        }
+        let header_end = memchr::memchr(b'\n', &pending).unwrap_or(pending.len());
+        let mut chunks = CsvChunks {
+            columns: Columns {
+                path: path.to_path_buf(),
+                names: Vec::new(),
+                features: Vec::new(),
+            },
+            block_bytes: BLOCK_BYTES,
+            rows_done: 0,
+            mode: Mode::Done,
+        };
+        if memchr::memchr(b'"', &pending[..header_end]).is_some() {
+            let mut reader = quoted_reader(pending, source);
+            let mut header = ByteRecord::new();
+            let has_header = reader
+                .read_byte_record(&mut header)
+                .map_err(|e| csv_error(path, e))?;
+            if !has_header {
+                return Err(header_error(path, HeaderFault::Missing));
+            }
+            chunks.columns.names = header_names(path, header.iter())?;
+            chunks.mode = Mode::Quoted(Box::new(reader));
+        } else {
+            let header_line = trim_cr(&pending[..header_end]);
+            if header_line.is_empty() && header_end >= pending.len() {
+                return Err(header_error(path, HeaderFault::Missing));
+            }
+            chunks.columns.names = header_names(path, header_line.split(|&b| b == b','))?;
+            pending.drain(..(header_end + 1).min(pending.len()));
+            chunks.mode = Mode::Lines {
+                source,
+                pending,
+                at_end,
             };
         }
-        chunks.push(&body[start..end]);
-        start = end;
+        chunks.columns.features = select_features(path, &chunks.columns.names, options)?;
+        Ok(chunks)
     }
-    // Each chunk: its rows' values, its row count, and its first bad row (local number).
-    struct Chunk {
-        values: Vec<f64>,
-        rows: usize,
-        failure: Option<(usize, Error)>,
+
+    /// The feature columns' names.
+    pub(super) fn feature_names(&self) -> Vec<String> {
+        let columns = &self.columns;
+        columns
+            .features
+            .iter()
+            .map(|&c| columns.names[c].clone())
+            .collect()
     }
-    let parsed: Vec<Chunk> = chunks
-        .par_iter()
-        .map(|chunk| {
-            let mut values = Vec::with_capacity(chunk.len() / 8);
-            let mut rows = 0usize;
-            for line in chunk.split(|&b| b == b'\n') {
-                let line = trim_cr(line);
-                if line.is_empty() {
-                    continue;
-                }
-                rows += 1;
-                // Parse with a placeholder row number; the true one needs earlier chunks.
-                match parse_cells(
-                    path,
-                    line.split(|&b| b == b','),
-                    0,
-                    width,
-                    &features,
-                    &names,
-                ) {
-                    Ok(row) => values.extend_from_slice(&row),
-                    Err(error) => {
-                        return Chunk {
-                            values,
-                            rows,
-                            failure: Some((rows, error)),
-                        };
+
+    /// Rows returned so far.
+    pub(super) fn rows_done(&self) -> usize {
+        self.rows_done
+    }
+
+    /// The next block's rows as row-major values (a multiple of the feature count), or
+    /// `None` at the end of the file.
+    pub(super) fn next_chunk(&mut self) -> Result<Option<Vec<f64>>> {
+        loop {
+            match &mut self.mode {
+                Mode::Lines {
+                    source,
+                    pending,
+                    at_end,
+                } => {
+                    while !*at_end && pending.len() < self.block_bytes {
+                        *at_end = fill(&self.columns.path, source, pending, self.block_bytes)?;
+                    }
+                    if pending.is_empty() {
+                        return Ok(None);
+                    }
+                    if memchr::memchr(b'"', pending).is_some() {
+                        self.switch_to_quoted();
+                        continue;
+                    }
+                    // Parse up to the last complete line; keep the rest for the next block.
+                    let cut = if *at_end {
+                        pending.len()
+                    } else {
+                        match memchr::memrchr(b'\n', pending) {
+                            Some(at) => at + 1,
+                            None => {
+                                // One line longer than a block: read on until it ends.
+                                *at_end =
+                                    fill(&self.columns.path, source, pending, self.block_bytes)?;
+                                continue;
+                            }
+                        }
+                    };
+                    let block: Vec<u8> = pending.drain(..cut).collect();
+                    let (values, rows) = self.columns.parse_lines(&block, self.rows_done)?;
+                    self.rows_done += rows;
+                    if rows > 0 {
+                        return Ok(Some(values));
                     }
                 }
+                Mode::Quoted(reader) => {
+                    let mut batch: Vec<ByteRecord> = Vec::with_capacity(QUOTED_CHUNK_ROWS);
+                    let mut record = ByteRecord::new();
+                    while batch.len() < QUOTED_CHUNK_ROWS
+                        && reader
+                            .read_byte_record(&mut record)
+                            .map_err(|e| csv_error(&self.columns.path, e))?
+                    {
+                        batch.push(std::mem::take(&mut record));
+                    }
+                    if batch.is_empty() {
+                        return Ok(None);
+                    }
+                    let columns = &self.columns;
+                    let first = self.rows_done;
+                    let parsed: Vec<Result<Vec<f64>>> = batch
+                        .par_iter()
+                        .enumerate()
+                        .map(|(i, record)| columns.parse_cells(record.iter(), first + i + 1))
+                        .collect();
+                    let mut values = Vec::with_capacity(batch.len() * columns.features.len());
+                    for row in parsed {
+                        values.extend_from_slice(&row?);
+                    }
+                    self.rows_done += batch.len();
+                    return Ok(Some(values));
+                }
+                Mode::Done => return Ok(None),
             }
-            Chunk {
-                values,
-                rows,
-                failure: None,
-            }
-        })
-        .collect();
-    let total: usize = parsed.iter().map(|c| c.values.len()).sum();
-    let mut values = Vec::with_capacity(total);
-    let mut rows_before = 0;
-    for chunk in parsed {
-        if let Some((local, error)) = chunk.failure {
-            return Err(renumber_row(error, rows_before + local));
         }
-        values.extend_from_slice(&chunk.values);
-        rows_before += chunk.rows;
     }
-    Ok((names, features, rows_before, values))
+
+    fn switch_to_quoted(&mut self) {
+        if let Mode::Lines {
+            source, pending, ..
+        } = std::mem::replace(&mut self.mode, Mode::Done)
+        {
+            self.mode = Mode::Quoted(Box::new(quoted_reader(pending, source)));
+        }
+    }
 }
 
-/// Puts the true 1-based data row into an error made with a placeholder.
-fn renumber_row(error: Error, global: usize) -> Error {
+impl Columns {
+    /// Parses a block of whole lines in parallel; blank lines are skipped. The first bad
+    /// row is reported with its number in the file.
+    fn parse_lines(&self, block: &[u8], rows_done: usize) -> Result<(Vec<f64>, usize)> {
+        let mut tasks = Vec::new();
+        let mut start = 0;
+        while start < block.len() {
+            let mut end = (start + TASK_BYTES).min(block.len());
+            if end < block.len() {
+                end = match memchr::memchr(b'\n', &block[end..]) {
+                    Some(offset) => end + offset + 1,
+                    None => block.len(),
+                };
+            }
+            tasks.push(&block[start..end]);
+            start = end;
+        }
+        // Each task: its rows' values, its row count, and its first bad row (local number,
+        // counted from 1, with the error made for that local number).
+        let parsed: Vec<(Vec<f64>, usize, Option<Error>)> = tasks
+            .par_iter()
+            .map(|task| {
+                let mut values = Vec::with_capacity(task.len() / 8);
+                let mut rows = 0usize;
+                for line in task.split(|&b| b == b'\n') {
+                    let line = trim_cr(line);
+                    if line.is_empty() {
+                        continue;
+                    }
+                    rows += 1;
+                    match self.parse_cells(line.split(|&b| b == b','), rows) {
+                        Ok(row) => values.extend_from_slice(&row),
+                        Err(error) => return (values, rows, Some(error)),
+                    }
+                }
+                (values, rows, None)
+            })
+            .collect();
+        let total: usize = parsed.iter().map(|p| p.0.len()).sum();
+        let mut values = Vec::with_capacity(total);
+        let mut rows_before = rows_done;
+        for (task_values, rows, failure) in parsed {
+            if let Some(error) = failure {
+                return Err(shift_row(error, rows_before));
+            }
+            values.extend_from_slice(&task_values);
+            rows_before += rows;
+        }
+        Ok((values, rows_before - rows_done))
+    }
+
+    fn parse_cells<'a>(
+        &self,
+        cells: impl Iterator<Item = &'a [u8]>,
+        row: usize,
+    ) -> Result<Vec<f64>> {
+        let cells: Vec<&[u8]> = cells.collect();
+        let width = self.names.len();
+        if cells.len() != width {
+            return Err(Error::RaggedRow {
+                path: self.path.clone(),
+                row,
+                expected: width,
+                found: cells.len(),
+            });
+        }
+        let mut out = Vec::with_capacity(self.features.len());
+        for &c in &self.features {
+            match parse_cell(cells[c]) {
+                Ok(value) => out.push(value),
+                Err(fault) => {
+                    return Err(Error::BadCell {
+                        path: self.path.clone(),
+                        row,
+                        column: ColumnRef::Named(self.names[c].clone()),
+                        fault,
+                    })
+                }
+            }
+        }
+        Ok(out)
+    }
+}
+
+fn quoted_reader(
+    pending: Vec<u8>,
+    source: Source,
+) -> csv::Reader<io::Chain<Cursor<Vec<u8>>, Source>> {
+    csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(Cursor::new(pending).chain(source))
+}
+
+/// Reads up to `want` more bytes onto `buffer`; true at the end of the source.
+fn fill(path: &Path, source: &mut Source, buffer: &mut Vec<u8>, want: usize) -> Result<bool> {
+    let before = buffer.len();
+    let read = source
+        .by_ref()
+        .take(want as u64)
+        .read_to_end(buffer)
+        .map_err(|e| Error::io(path, e))?;
+    debug_assert_eq!(buffer.len(), before + read);
+    Ok(read == 0)
+}
+
+/// Adds the rows before a task to the row number of an error made within it.
+fn shift_row(error: Error, rows_before: usize) -> Error {
     match error {
         Error::RaggedRow {
             path,
+            row,
             expected,
             found,
-            ..
         } => Error::RaggedRow {
             path,
-            row: global,
+            row: rows_before + row,
             expected,
             found,
         },
         Error::BadCell {
             path,
+            row,
             column,
             fault,
-            ..
         } => Error::BadCell {
             path,
-            row: global,
+            row: rows_before + row,
             column,
             fault,
         },
@@ -276,40 +400,6 @@ fn select_features(path: &Path, names: &[String], options: &CsvOptions) -> Resul
     Ok(features)
 }
 
-fn parse_cells<'a>(
-    path: &Path,
-    cells: impl Iterator<Item = &'a [u8]>,
-    row: usize,
-    width: usize,
-    features: &[usize],
-    names: &[String],
-) -> Result<Vec<f64>> {
-    let cells: Vec<&[u8]> = cells.collect();
-    if cells.len() != width {
-        return Err(Error::RaggedRow {
-            path: path.to_path_buf(),
-            row,
-            expected: width,
-            found: cells.len(),
-        });
-    }
-    let mut out = Vec::with_capacity(features.len());
-    for &c in features {
-        match parse_cell(cells[c]) {
-            Ok(value) => out.push(value),
-            Err(fault) => {
-                return Err(Error::BadCell {
-                    path: path.to_path_buf(),
-                    row,
-                    column: ColumnRef::Named(names[c].clone()),
-                    fault,
-                })
-            }
-        }
-    }
-    Ok(out)
-}
-
 /// Parses one numeric cell; surrounding spaces are allowed.
 pub(crate) fn parse_cell(raw: &[u8]) -> std::result::Result<f64, CellFault> {
     let text = std::str::from_utf8(raw)
@@ -346,6 +436,79 @@ fn csv_error(path: &Path, error: csv::Error) -> Error {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Every row of `text` read with blocks of `block` bytes, or the first error.
+    fn read_in_blocks(text: &[u8], block: usize) -> Result<(Vec<String>, Vec<f64>)> {
+        let mut chunks = CsvChunks::new(
+            Path::new("t.csv"),
+            Box::new(Cursor::new(text.to_vec())),
+            &CsvOptions {
+                id_columns: vec!["id".into()],
+                label_columns: vec![],
+            },
+        )?;
+        chunks.block_bytes = block;
+        let mut values = Vec::new();
+        while let Some(chunk) = chunks.next_chunk()? {
+            values.extend(chunk);
+        }
+        Ok((chunks.feature_names(), values))
+    }
+
+    fn table(rows: usize, quoted_from: Option<usize>, line_end: &str) -> String {
+        let mut text = format!("\u{feff}id,a,b{line_end}");
+        for r in 0..rows {
+            let id = match quoted_from {
+                Some(q) if r >= q => format!("\"r,{r}\""),
+                _ => format!("r{r}"),
+            };
+            text += &format!("{id},{r}.5,{}{line_end}", r as f64 * -2.0);
+        }
+        text
+    }
+
+    /// The rows, whatever the block size: blocks far smaller than a line, blocks cutting
+    /// lines anywhere, a quote first met in a later block, CRLF, and a BOM.
+    #[test]
+    fn blocks_do_not_change_the_rows() {
+        let expected: Vec<f64> = (0..200)
+            .flat_map(|r| [r as f64 + 0.5, r as f64 * -2.0])
+            .collect();
+        for line_end in ["\n", "\r\n"] {
+            for quoted_from in [None, Some(0), Some(150)] {
+                let text = table(200, quoted_from, line_end);
+                for block in [1, 7, 64, 1000, 1 << 20] {
+                    let (names, values) = read_in_blocks(text.as_bytes(), block).unwrap();
+                    assert_eq!(names, vec!["a", "b"]);
+                    assert_eq!(
+                        values, expected,
+                        "block {block}, quoted from {quoted_from:?}"
+                    );
+                }
+            }
+        }
+    }
+
+    /// A bad cell is reported with its row in the file, counted across blocks.
+    #[test]
+    fn bad_cells_are_numbered_across_blocks() {
+        let mut text = table(300, None, "\n");
+        text = text.replace("r250,250.5,", "r250,oops,");
+        for block in [16, 100, 1 << 20] {
+            match read_in_blocks(text.as_bytes(), block) {
+                Err(Error::BadCell { row, column, .. }) => {
+                    assert_eq!(row, 251, "block {block}");
+                    assert_eq!(column, ColumnRef::Named("a".into()));
+                }
+                other => panic!("block {block}: {other:?}"),
+            }
+        }
+        let ragged = table(300, None, "\n").replace("r120,120.5,-240\n", "r120,120.5\n");
+        match read_in_blocks(ragged.as_bytes(), 50) {
+            Err(Error::RaggedRow { row, found, .. }) => assert_eq!((row, found), (121, 2)),
+            other => panic!("{other:?}"),
+        }
+    }
 
     #[test]
     fn cells_parse_or_say_why_not() {

@@ -3,17 +3,25 @@
 //! A [`FeatureMatrix`] is one input per row, features in a fixed column order, every cell
 //! finite. Readers validate as they go and report the first bad cell with its file, 1-based
 //! data row and column, so that a user can find it in a spreadsheet.
+//!
+//! [`MatrixChunks`] reads a file a block of rows at a time, so that commands which handle
+//! rows independently (`score`, `audit`, `baseline`, `predict`) hold a bounded amount of
+//! it in memory whatever its length; [`read_matrix`] collects every block.
 
 mod csv_reader;
 mod npy_reader;
 
+use std::fs::File;
+use std::io::{BufReader, Read};
 use std::path::{Path, PathBuf};
 
 use ndarray::Array2;
 
 use crate::error::{Error, Result};
 
+use csv_reader::CsvChunks;
 pub use csv_reader::CsvOptions;
+use npy_reader::NpyChunks;
 
 /// A numeric matrix read from a file, with its column names.
 #[derive(Debug, Clone)]
@@ -39,21 +47,171 @@ impl FeatureMatrix {
     pub fn columns(&self) -> usize {
         self.values.ncols()
     }
-}
 
-/// Reads a `.csv` or `.npy` matrix file, chosen by extension.
-pub fn read_matrix(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
-    match extension(path).as_deref() {
-        Some("csv") => csv_reader::read_csv(path, options),
-        Some("npy") => npy_reader::read_npy(path),
-        _ => Err(Error::UnknownFileType {
-            path: path.to_path_buf(),
-        }),
+    /// The names and origin of the columns.
+    pub fn header(&self) -> MatrixHeader<'_> {
+        MatrixHeader {
+            names: &self.names,
+            named: self.named,
+            source: &self.source,
+        }
     }
 }
 
-fn extension(path: &Path) -> Option<String> {
-    path.extension()
-        .and_then(|e| e.to_str())
-        .map(|e| e.to_ascii_lowercase())
+/// What a matrix file says about its columns, before or without its rows.
+#[derive(Debug, Clone, Copy)]
+pub struct MatrixHeader<'a> {
+    /// Column names (see [`FeatureMatrix::names`]).
+    pub names: &'a [String],
+    /// Whether the names came from a header.
+    pub named: bool,
+    /// The file.
+    pub source: &'a Path,
+}
+
+/// The file formats a matrix can come in.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum MatrixFormat {
+    /// Comma-separated values with a header row.
+    Csv,
+    /// NumPy's `.npy`.
+    Npy,
+}
+
+impl MatrixFormat {
+    /// The format a path's extension names.
+    pub fn of(path: &Path) -> Result<MatrixFormat> {
+        let extension = path
+            .extension()
+            .and_then(|e| e.to_str())
+            .map(|e| e.to_ascii_lowercase());
+        match extension.as_deref() {
+            Some("csv") => Ok(MatrixFormat::Csv),
+            Some("npy") => Ok(MatrixFormat::Npy),
+            _ => Err(Error::UnknownFileType {
+                path: path.to_path_buf(),
+            }),
+        }
+    }
+}
+
+enum Reader {
+    Csv(CsvChunks),
+    Npy(NpyChunks),
+}
+
+/// A matrix file read a block of rows at a time.
+pub struct MatrixChunks {
+    names: Vec<String>,
+    named: bool,
+    source: PathBuf,
+    reader: Reader,
+}
+
+impl MatrixChunks {
+    /// Opens a `.csv` or `.npy` file (chosen by extension) and reads its header.
+    pub fn open(path: &Path, options: &CsvOptions) -> Result<MatrixChunks> {
+        let format = MatrixFormat::of(path)?;
+        let file = File::open(path).map_err(|e| Error::io(path, e))?;
+        MatrixChunks::from_reader(format, Box::new(BufReader::new(file)), path, options)
+    }
+
+    /// Reads a matrix from any byte source; `path` names it in messages.
+    pub fn from_reader(
+        format: MatrixFormat,
+        source: Box<dyn Read + Send>,
+        path: &Path,
+        options: &CsvOptions,
+    ) -> Result<MatrixChunks> {
+        let (names, named, reader) = match format {
+            MatrixFormat::Csv => {
+                let csv = CsvChunks::new(path, source, options)?;
+                (csv.feature_names(), true, Reader::Csv(csv))
+            }
+            MatrixFormat::Npy => {
+                let npy = NpyChunks::new(path, source)?;
+                let names = (1..=npy.columns()).map(|c| c.to_string()).collect();
+                (names, false, Reader::Npy(npy))
+            }
+        };
+        Ok(MatrixChunks {
+            names,
+            named,
+            source: path.to_path_buf(),
+            reader,
+        })
+    }
+
+    /// The names and origin of the columns.
+    pub fn header(&self) -> MatrixHeader<'_> {
+        MatrixHeader {
+            names: &self.names,
+            named: self.named,
+            source: &self.source,
+        }
+    }
+
+    /// Number of feature columns.
+    pub fn columns(&self) -> usize {
+        self.names.len()
+    }
+
+    /// The number of rows, when the header says it (`.npy`).
+    pub fn rows_hint(&self) -> Option<usize> {
+        match &self.reader {
+            Reader::Csv(_) => None,
+            Reader::Npy(npy) => Some(npy.rows()),
+        }
+    }
+
+    /// Rows returned so far: the 0-based index of the next chunk's first row.
+    pub fn rows_done(&self) -> usize {
+        match &self.reader {
+            Reader::Csv(csv) => csv.rows_done(),
+            Reader::Npy(npy) => npy.rows_done(),
+        }
+    }
+
+    /// The next block of rows, or `None` after the last. A file without any data row is
+    /// an error here, at its end.
+    pub fn next_chunk(&mut self) -> Result<Option<Array2<f64>>> {
+        let values = match &mut self.reader {
+            Reader::Csv(csv) => csv.next_chunk()?,
+            Reader::Npy(npy) => npy.next_chunk()?,
+        };
+        match values {
+            Some(values) => {
+                let rows = values.len() / self.names.len();
+                Ok(Some(
+                    Array2::from_shape_vec((rows, self.names.len()), values)
+                        .expect("readers return whole rows"),
+                ))
+            }
+            None if self.rows_done() == 0 => Err(Error::NoRows {
+                path: self.source.clone(),
+            }),
+            None => Ok(None),
+        }
+    }
+
+    /// Reads every remaining row into one matrix.
+    pub fn read_all(mut self) -> Result<FeatureMatrix> {
+        let columns = self.names.len();
+        let mut values = Vec::with_capacity(self.rows_hint().unwrap_or(0) * columns);
+        while let Some(chunk) = self.next_chunk()? {
+            values.extend(chunk.iter());
+        }
+        let rows = values.len() / columns;
+        Ok(FeatureMatrix {
+            values: Array2::from_shape_vec((rows, columns), values).expect("whole rows were read"),
+            names: self.names,
+            named: self.named,
+            source: self.source,
+        })
+    }
+}
+
+/// Reads a whole `.csv` or `.npy` matrix file, chosen by extension.
+pub fn read_matrix(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
+    MatrixChunks::open(path, options)?.read_all()
 }

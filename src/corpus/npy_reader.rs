@@ -1,93 +1,458 @@
 //! NumPy `.npy` input: 2-D little-endian `f4` or `f8` arrays, format versions 1 and 2.
+//!
+//! The header (NumPy's format description, NEP 1: magic, version, a Python dict literal
+//! with `descr`, `fortran_order` and `shape`) is parsed here so that C-order data can be
+//! read a block of rows at a time, keeping memory bounded whatever the file's length.
+//! Fortran-order arrays cannot be cut into rows without reading them whole, so they are.
 
-use std::io::Cursor;
-use std::path::Path;
+use std::io::Read;
+use std::path::{Path, PathBuf};
 
-use ndarray::Array2;
-use ndarray_npy::{ReadNpyError, ReadNpyExt};
-
-use super::FeatureMatrix;
 use crate::error::{CellFault, ColumnRef, Error, Result};
 
-pub(super) fn read_npy(path: &Path) -> Result<FeatureMatrix> {
-    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    check_preamble(path, &bytes)?;
-    let values: Array2<f64> = match Array2::<f64>::read_npy(Cursor::new(&bytes)) {
-        Ok(values) => values,
-        Err(ReadNpyError::WrongDescriptor(_)) => Array2::<f32>::read_npy(Cursor::new(&bytes))
-            .map_err(|e| npy_error(path, e))?
-            .mapv(f64::from),
-        Err(e) => return Err(npy_error(path, e)),
-    };
-    if values.nrows() == 0 {
-        return Err(Error::NoRows {
-            path: path.to_path_buf(),
-        });
-    }
-    if values.ncols() == 0 {
-        return Err(Error::Npy {
-            path: path.to_path_buf(),
-            detail: "the array has no columns".into(),
-        });
-    }
-    // Row-major scan so that the first bad cell reported is the first a person would meet.
-    for (r, row) in values.outer_iter().enumerate() {
-        for (c, value) in row.iter().enumerate() {
-            if !value.is_finite() {
-                return Err(Error::BadCell {
-                    path: path.to_path_buf(),
-                    row: r + 1,
-                    column: ColumnRef::Position(c + 1),
-                    fault: CellFault::NotFinite(value.to_string()),
-                });
-            }
+/// Bytes of data read per chunk.
+const BLOCK_BYTES: usize = 16 << 20;
+const MAGIC: &[u8] = b"\x93NUMPY";
+
+type Source = Box<dyn Read + Send>;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Dtype {
+    F4,
+    F8,
+}
+
+impl Dtype {
+    fn size(self) -> usize {
+        match self {
+            Dtype::F4 => 4,
+            Dtype::F8 => 8,
         }
     }
-    let values = values.as_standard_layout().into_owned();
-    Ok(FeatureMatrix {
-        names: (1..=values.ncols()).map(|c| c.to_string()).collect(),
-        named: false,
-        values,
-        source: path.to_path_buf(),
+}
+
+/// The parts of an `.npy` header kilter uses.
+#[derive(Debug, Clone, PartialEq, Eq)]
+struct Header {
+    dtype: Dtype,
+    fortran_order: bool,
+    rows: usize,
+    columns: usize,
+}
+
+/// An `.npy` matrix read a block of rows at a time.
+pub(super) struct NpyChunks {
+    path: PathBuf,
+    source: Source,
+    header: Header,
+    /// Bytes per block ([`BLOCK_BYTES`]; small in tests).
+    block_bytes: usize,
+    rows_done: usize,
+    /// A Fortran-order array, read whole and transposed to rows, still to hand out.
+    whole: Option<Vec<f64>>,
+}
+
+impl NpyChunks {
+    /// Reads and checks the header; the rows come with [`NpyChunks::next_chunk`].
+    pub(super) fn new(path: &Path, mut source: Source) -> Result<Self> {
+        let header = read_header(path, &mut source)?;
+        let mut chunks = NpyChunks {
+            path: path.to_path_buf(),
+            source,
+            header,
+            block_bytes: BLOCK_BYTES,
+            rows_done: 0,
+            whole: None,
+        };
+        if chunks.header.fortran_order {
+            let (rows, columns) = (chunks.header.rows, chunks.header.columns);
+            let by_column = chunks.read_values(rows * columns)?;
+            chunks.check_end()?;
+            let mut by_row = vec![0.0; rows * columns];
+            for c in 0..columns {
+                for r in 0..rows {
+                    by_row[r * columns + c] = by_column[c * rows + r];
+                }
+            }
+            chunks.whole = Some(by_row);
+        }
+        Ok(chunks)
+    }
+
+    pub(super) fn rows(&self) -> usize {
+        self.header.rows
+    }
+
+    pub(super) fn columns(&self) -> usize {
+        self.header.columns
+    }
+
+    pub(super) fn rows_done(&self) -> usize {
+        self.rows_done
+    }
+
+    /// The next block of rows as row-major values, or `None` after the last row.
+    pub(super) fn next_chunk(&mut self) -> Result<Option<Vec<f64>>> {
+        let Header { rows, columns, .. } = self.header;
+        if self.rows_done >= rows {
+            return Ok(None);
+        }
+        let values = match self.whole.take() {
+            Some(all) => {
+                self.rows_done = rows;
+                all
+            }
+            None => {
+                let per_block = (self.block_bytes / (columns * self.header.dtype.size())).max(1);
+                let take = per_block.min(rows - self.rows_done);
+                let values = self.read_values(take * columns)?;
+                self.rows_done += take;
+                if self.rows_done == rows {
+                    self.check_end()?;
+                }
+                values
+            }
+        };
+        let first_row = self.rows_done - values.len() / columns;
+        // Row-major scan so that the first bad cell reported is the first a person meets.
+        if let Some(at) = values.iter().position(|v| !v.is_finite()) {
+            return Err(Error::BadCell {
+                path: self.path.clone(),
+                row: first_row + at / columns + 1,
+                column: ColumnRef::Position(at % columns + 1),
+                fault: CellFault::NotFinite(values[at].to_string()),
+            });
+        }
+        Ok(Some(values))
+    }
+
+    fn read_values(&mut self, count: usize) -> Result<Vec<f64>> {
+        let size = self.header.dtype.size();
+        let mut bytes = vec![0u8; count * size];
+        self.source
+            .read_exact(&mut bytes)
+            .map_err(|e| match e.kind() {
+                std::io::ErrorKind::UnexpectedEof => npy_error(
+                    &self.path,
+                    "the file is shorter than its header says (truncated?)".into(),
+                ),
+                _ => Error::io(&self.path, e),
+            })?;
+        Ok(match self.header.dtype {
+            Dtype::F8 => bytes
+                .chunks_exact(8)
+                .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")))
+                .collect(),
+            Dtype::F4 => bytes
+                .chunks_exact(4)
+                .map(|b| f64::from(f32::from_le_bytes(b.try_into().expect("4 bytes"))))
+                .collect(),
+        })
+    }
+
+    /// After the last value the file must end.
+    fn check_end(&mut self) -> Result<()> {
+        let mut rest = Vec::new();
+        self.source
+            .by_ref()
+            .take(1 << 20)
+            .read_to_end(&mut rest)
+            .map_err(|e| Error::io(&self.path, e))?;
+        if rest.is_empty() {
+            Ok(())
+        } else {
+            Err(npy_error(
+                &self.path,
+                format!(
+                    "the file has {}{} bytes after the array data",
+                    rest.len(),
+                    if rest.len() >= 1 << 20 {
+                        " or more"
+                    } else {
+                        ""
+                    }
+                ),
+            ))
+        }
+    }
+}
+
+fn read_header(path: &Path, source: &mut Source) -> Result<Header> {
+    let mut preamble = [0u8; 8];
+    if !read_fully(path, source, &mut preamble)? || &preamble[..6] != MAGIC {
+        return Err(npy_error(
+            path,
+            "not a NumPy .npy file (the signature is missing)".into(),
+        ));
+    }
+    let major = preamble[6];
+    let length = match major {
+        1 => {
+            let mut n = [0u8; 2];
+            read_header_bytes(path, source, &mut n)?;
+            usize::from(u16::from_le_bytes(n))
+        }
+        2 => {
+            let mut n = [0u8; 4];
+            read_header_bytes(path, source, &mut n)?;
+            u32::from_le_bytes(n) as usize
+        }
+        _ => {
+            return Err(npy_error(
+                path,
+                format!(".npy format version {major} is not supported (use 1 or 2)"),
+            ))
+        }
+    };
+    if length > 1 << 20 {
+        return Err(npy_error(
+            path,
+            format!("the header claims {length} bytes; not a matrix file"),
+        ));
+    }
+    let mut text = vec![0u8; length];
+    read_header_bytes(path, source, &mut text)?;
+    let text =
+        String::from_utf8(text).map_err(|_| npy_error(path, "the header is not text".into()))?;
+    parse_header(&text).map_err(|detail| npy_error(path, detail))
+}
+
+/// Reads exactly `buffer.len()` bytes; false if the source ends first.
+fn read_fully(path: &Path, source: &mut Source, buffer: &mut [u8]) -> Result<bool> {
+    match source.read_exact(buffer) {
+        Ok(()) => Ok(true),
+        Err(e) if e.kind() == std::io::ErrorKind::UnexpectedEof => Ok(false),
+        Err(e) => Err(Error::io(path, e)),
+    }
+}
+
+fn read_header_bytes(path: &Path, source: &mut Source, buffer: &mut [u8]) -> Result<()> {
+    if read_fully(path, source, buffer)? {
+        Ok(())
+    } else {
+        Err(npy_error(path, "the file ends inside its header".into()))
+    }
+}
+
+/// Parses the header dict, e.g. `{'descr': '<f8', 'fortran_order': False, 'shape': (3, 2), }`.
+fn parse_header(text: &str) -> std::result::Result<Header, String> {
+    let body = text
+        .trim()
+        .strip_prefix('{')
+        .and_then(|t| t.strip_suffix('}'))
+        .ok_or("the header is not a dictionary")?;
+    let descr = quoted_value(body, "descr").ok_or("the header has no 'descr'")?;
+    let dtype = match descr.as_str() {
+        "<f8" => Dtype::F8,
+        "<f4" => Dtype::F4,
+        other => {
+            return Err(format!(
+                "the array's dtype {other} is not supported; use little-endian float32 ('<f4') or float64 ('<f8')"
+            ))
+        }
+    };
+    let fortran = raw_value(body, "fortran_order").ok_or("the header has no 'fortran_order'")?;
+    let fortran_order = match fortran.trim() {
+        "False" => false,
+        "True" => true,
+        other => return Err(format!("the header's fortran_order is {other}")),
+    };
+    let shape = raw_value(body, "shape").ok_or("the header has no 'shape'")?;
+    let dims = shape
+        .trim()
+        .strip_prefix('(')
+        .and_then(|s| s.split(')').next())
+        .ok_or("the header's shape is not a tuple")?;
+    let dims: Vec<usize> = dims
+        .split(',')
+        .map(str::trim)
+        .filter(|d| !d.is_empty())
+        .map(|d| d.parse().map_err(|_| format!("the header's shape has {d}")))
+        .collect::<std::result::Result<_, String>>()?;
+    let [rows, columns] = dims[..] else {
+        return Err(format!(
+            "the array has {} dimensions; a matrix file needs exactly 2 (rows x features)",
+            dims.len()
+        ));
+    };
+    if columns == 0 {
+        return Err("the array has no columns".into());
+    }
+    if rows
+        .checked_mul(columns)
+        .and_then(|n| n.checked_mul(8))
+        .is_none()
+    {
+        return Err("the header's shape is too large".into());
+    }
+    Ok(Header {
+        dtype,
+        fortran_order,
+        rows,
+        columns,
     })
 }
 
-/// Checks the magic string and the format version before handing the bytes to the parser,
-/// so that the user hears "not an .npy file" rather than a parser's internal complaint.
-fn check_preamble(path: &Path, bytes: &[u8]) -> Result<()> {
-    const MAGIC: &[u8] = b"\x93NUMPY";
-    if bytes.len() < 8 || &bytes[..6] != MAGIC {
-        return Err(Error::Npy {
-            path: path.to_path_buf(),
-            detail: "not a NumPy .npy file (the signature is missing)".into(),
-        });
+/// The text after `'key':` up to the next top-level comma (a tuple counts as one value).
+fn raw_value(body: &str, key: &str) -> Option<String> {
+    let at = body.find(&format!("'{key}'"))? + key.len() + 2;
+    let rest = body[at..].trim_start().strip_prefix(':')?;
+    let mut depth = 0i32;
+    let mut end = rest.len();
+    for (i, ch) in rest.char_indices() {
+        match ch {
+            '(' => depth += 1,
+            ')' => depth -= 1,
+            ',' if depth == 0 => {
+                end = i;
+                break;
+            }
+            _ => {}
+        }
     }
-    let major = bytes[6];
-    if major != 1 && major != 2 {
-        return Err(Error::Npy {
-            path: path.to_path_buf(),
-            detail: format!(".npy format version {major} is not supported (use 1 or 2)"),
-        });
-    }
-    Ok(())
+    Some(rest[..end].trim().to_string())
 }
 
-fn npy_error(path: &Path, error: ReadNpyError) -> Error {
-    let detail = match error {
-        ReadNpyError::WrongNdim(_, found) => {
-            format!("the array has {found} dimensions; a matrix file needs exactly 2 (rows x features)")
-        }
-        ReadNpyError::WrongDescriptor(descr) => format!(
-            "the array's dtype {descr} is not supported; use little-endian float32 ('<f4') or float64 ('<f8')"
-        ),
-        ReadNpyError::LengthOverflow | ReadNpyError::MissingData => {
-            "the file is shorter than its header says (truncated?)".to_string()
-        }
-        ReadNpyError::ExtraBytes(n) => format!("the file has {n} bytes after the array data"),
-        other => format!("cannot read the array: {other}"),
-    };
+fn quoted_value(body: &str, key: &str) -> Option<String> {
+    let raw = raw_value(body, key)?;
+    let inner = raw
+        .strip_prefix('\'')
+        .and_then(|r| r.strip_suffix('\''))
+        .or_else(|| raw.strip_prefix('"').and_then(|r| r.strip_suffix('"')))?;
+    Some(inner.to_string())
+}
+
+fn npy_error(path: &Path, detail: String) -> Error {
     Error::Npy {
         path: path.to_path_buf(),
         detail,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// An `.npy` file as NumPy writes it: v1.0 header padded with spaces to a multiple of
+    /// 64 bytes, ending in a newline (NEP 1).
+    fn npy(descr: &str, fortran: bool, shape: (usize, usize), data: &[u8]) -> Vec<u8> {
+        let dict = format!(
+            "{{'descr': '{descr}', 'fortran_order': {}, 'shape': ({}, {}), }}",
+            if fortran { "True" } else { "False" },
+            shape.0,
+            shape.1
+        );
+        let unpadded = 10 + dict.len() + 1;
+        let padding = (64 - unpadded % 64) % 64;
+        let header = format!("{dict}{}\n", " ".repeat(padding));
+        let mut out = b"\x93NUMPY\x01\x00".to_vec();
+        out.extend_from_slice(&(header.len() as u16).to_le_bytes());
+        out.extend_from_slice(header.as_bytes());
+        out.extend_from_slice(data);
+        out
+    }
+
+    fn read_in_blocks(bytes: Vec<u8>, block: usize) -> Result<Vec<f64>> {
+        let mut chunks = NpyChunks::new(Path::new("t.npy"), Box::new(std::io::Cursor::new(bytes)))?;
+        chunks.block_bytes = block;
+        let mut values = Vec::new();
+        while let Some(chunk) = chunks.next_chunk()? {
+            values.extend(chunk);
+        }
+        Ok(values)
+    }
+
+    /// C order read in blocks of any size, float32 widened exactly, Fortran order
+    /// transposed to rows.
+    #[test]
+    fn rows_come_back_in_order_whatever_the_block() {
+        let values: Vec<f64> = (0..30).map(|v| v as f64 * 0.25 - 3.0).collect();
+        let f8: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let f4: Vec<u8> = values
+            .iter()
+            .flat_map(|v| (*v as f32).to_le_bytes())
+            .collect();
+        for block in [1, 24, 100, 1 << 20] {
+            assert_eq!(
+                read_in_blocks(npy("<f8", false, (10, 3), &f8), block).unwrap(),
+                values
+            );
+            assert_eq!(
+                read_in_blocks(npy("<f4", false, (10, 3), &f4), block).unwrap(),
+                values
+            );
+        }
+        // Stored by column: element (r, c) at c * rows + r.
+        let by_column: Vec<u8> = (0..3)
+            .flat_map(|c| (0..10).map(move |r| r * 3 + c))
+            .flat_map(|i| values[i].to_le_bytes())
+            .collect();
+        assert_eq!(
+            read_in_blocks(npy("<f8", true, (10, 3), &by_column), 24).unwrap(),
+            values
+        );
+    }
+
+    #[test]
+    fn damaged_files_are_refused_with_their_place() {
+        let mut values = vec![1.0f64; 30];
+        values[3 * 7 + 2] = f64::NAN;
+        let f8: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+        match read_in_blocks(npy("<f8", false, (10, 3), &f8), 24) {
+            Err(Error::BadCell { row, column, .. }) => {
+                assert_eq!((row, column), (8, ColumnRef::Position(3)))
+            }
+            other => panic!("{other:?}"),
+        }
+        let short = npy("<f8", false, (10, 3), &[0u8; 200]);
+        assert!(
+            matches!(read_in_blocks(short, 24), Err(Error::Npy { detail, .. }) if detail.contains("truncated"))
+        );
+        let mut long = npy("<f8", false, (10, 3), &vec![0u8; 240]);
+        long.extend_from_slice(&[0u8; 5]);
+        assert!(
+            matches!(read_in_blocks(long, 24), Err(Error::Npy { detail, .. }) if detail.contains("5 bytes after"))
+        );
+        assert!(
+            matches!(read_in_blocks(b"\x93NUMPY\x01".to_vec(), 24), Err(Error::Npy { detail, .. }) if detail.contains("signature"))
+        );
+    }
+
+    /// Headers as NumPy 2.x writes them (`np.lib.format.header_data_from_array_1_0`).
+    #[test]
+    fn numpy_headers_parse() {
+        let h = parse_header("{'descr': '<f8', 'fortran_order': False, 'shape': (3, 2), }   \n")
+            .unwrap();
+        assert_eq!(
+            h,
+            Header {
+                dtype: Dtype::F8,
+                fortran_order: false,
+                rows: 3,
+                columns: 2
+            }
+        );
+        let h =
+            parse_header("{'descr': '<f4', 'fortran_order': True, 'shape': (10, 1), }").unwrap();
+        assert_eq!(
+            (h.dtype, h.fortran_order, h.rows, h.columns),
+            (Dtype::F4, true, 10, 1)
+        );
+        assert!(
+            parse_header("{'descr': '<f8', 'fortran_order': False, 'shape': (3,), }")
+                .unwrap_err()
+                .contains("1 dimensions")
+        );
+        assert!(
+            parse_header("{'descr': '<i8', 'fortran_order': False, 'shape': (3, 2), }")
+                .unwrap_err()
+                .contains("<i8")
+        );
+        assert!(
+            parse_header("{'descr': '>f8', 'fortran_order': False, 'shape': (3, 2), }")
+                .unwrap_err()
+                .contains(">f8")
+        );
+        assert!(parse_header("garbage").is_err());
     }
 }

@@ -36,6 +36,14 @@ const MAX_LINE_BYTES: usize = 1 << 30;
 /// How long a child gets to exit after its stdin is closed.
 const EXIT_GRACE: Duration = Duration::from_secs(2);
 
+/// How a session failed.
+enum Broken {
+    /// An answer took longer than the timeout; the child was stopped.
+    TimedOut,
+    /// Any other failure, described.
+    Failed(String),
+}
+
 struct Session {
     child: Child,
     stdin: Option<ChildStdin>,
@@ -45,7 +53,7 @@ struct Session {
     /// Whether the model has answered a gradient request with gradients.
     gives_gradients: Option<bool>,
     /// Set once the session failed; every later call reports the same failure.
-    broken: Option<String>,
+    broken: Option<Broken>,
 }
 
 /// A model process speaking the line protocol.
@@ -157,7 +165,7 @@ impl LineProtocolModel {
             _ => String::new(),
         };
         let detail = format!("{detail}{status}");
-        session.broken = Some(detail.clone());
+        session.broken = Some(Broken::Failed(detail.clone()));
         Error::ModelFailed {
             model: self.name(),
             detail,
@@ -172,12 +180,23 @@ impl LineProtocolModel {
         rows: ArrayView2<'_, f64>,
         gradients_for: Option<usize>,
     ) -> Result<Answer> {
-        if let Some(detail) = &session.broken {
-            return Err(Error::ModelFailed {
-                model: self.name(),
-                detail: detail.clone(),
-                stderr_tail: self.stderr_tail(),
-            });
+        match &session.broken {
+            None => {}
+            // Every caller hears the first failure itself, whichever thread met it.
+            Some(Broken::TimedOut) => {
+                return Err(Error::ModelTimeout {
+                    model: self.name(),
+                    seconds: self.timeout.as_secs_f64(),
+                    stderr_tail: self.stderr_tail(),
+                })
+            }
+            Some(Broken::Failed(detail)) => {
+                return Err(Error::ModelFailed {
+                    model: self.name(),
+                    detail: detail.clone(),
+                    stderr_tail: self.stderr_tail(),
+                })
+            }
         }
         let owned = rows.as_standard_layout();
         let request = Request {
@@ -216,7 +235,7 @@ impl LineProtocolModel {
             }
             Err(RecvTimeoutError::Timeout) => {
                 let _ = session.child.kill();
-                session.broken = Some("it timed out earlier".into());
+                session.broken = Some(Broken::TimedOut);
                 return Err(Error::ModelTimeout {
                     model: self.name(),
                     seconds: self.timeout.as_secs_f64(),
@@ -256,7 +275,7 @@ impl LineProtocolModel {
                 Value::String(s) => s.clone(),
                 other => other.to_string(),
             };
-            session.broken = Some(format!("it reported: {message}"));
+            session.broken = Some(Broken::Failed(format!("it reported: {message}")));
             return Err(Error::ModelReported {
                 model: self.name(),
                 message,

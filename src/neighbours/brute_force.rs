@@ -43,14 +43,26 @@ pub struct BruteForceIndex {
 impl BruteForceIndex {
     /// Indexes the rows (copied into standard layout).
     pub fn new(rows: Array2<f64>) -> Self {
-        let rows = rows.as_standard_layout().into_owned();
+        // No copy of a million-row matrix that is already in standard layout, and no
+        // double-precision centred copy: the single-precision one is made row by row.
+        let rows = if rows.is_standard_layout() {
+            rows
+        } else {
+            rows.as_standard_layout().into_owned()
+        };
         let center = rows
             .mean_axis(Axis(0))
             .unwrap_or_else(|| Array1::zeros(rows.ncols()));
-        let centred64 = &rows - &center;
-        let largest = centred64.iter().fold(0.0_f64, |m, v| m.max(v.abs()));
+        let mut centred = Array2::<f32>::zeros(rows.dim());
+        let mut largest = 0.0_f64;
+        for (mut out, row) in centred.outer_iter_mut().zip(rows.outer_iter()) {
+            for ((o, &v), &c) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
+                let t = v - c;
+                largest = largest.max(t.abs());
+                *o = t as f32;
+            }
+        }
         let single_precision = largest < SINGLE_PRECISION_LIMIT;
-        let centred = centred64.mapv(|v| v as f32);
         let centred_norms = Array1::from_iter(
             centred
                 .outer_iter()

@@ -16,7 +16,7 @@
 //! signature's `\r\n` and `\x1a` catch a file mangled by text-mode transfers; the checksum
 //! catches truncation and edits.
 
-use std::io::Write;
+use std::io::{Read, Write};
 use std::path::Path;
 
 use ndarray::{Array1, Array2};
@@ -73,15 +73,79 @@ const SECTION_NAMES: [&str; 8] = [
     "feature_covariance",
 ];
 
+/// What a command needs of a profile. Scoring needs neither the raw fitted rows nor their
+/// Gaussian (the replacement samplers' distribution), which are as large as the index, so
+/// `score` skips that section and holds about one and a half times the indexed rows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ProfileScope {
+    /// Everything: `audit`, `baseline`.
+    Complete,
+    /// The embedding, statistics, index and calibration: `score`.
+    Scoring,
+}
+
+/// Bytes read or written per step of a section.
+const PIECE_BYTES: usize = 1 << 20;
+
+/// A writer that keeps the CRC-32 of everything written through it.
+struct HashingWriter<W: Write> {
+    inner: W,
+    hasher: crc32fast::Hasher,
+}
+
+impl<W: Write> Write for HashingWriter<W> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        let n = self.inner.write(buf)?;
+        self.hasher.update(&buf[..n]);
+        Ok(n)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.inner.flush()
+    }
+}
+
+/// Why reading a profile stopped: the reader failed, or the bytes are not a valid profile.
+enum ReadFailure {
+    Io(std::io::Error),
+    Fault(ProfileFault),
+}
+
+impl From<ProfileFault> for ReadFailure {
+    fn from(fault: ProfileFault) -> Self {
+        ReadFailure::Fault(fault)
+    }
+}
+
+/// Reads exactly `buffer.len()` bytes; the end of the source is truncation.
+fn read_exact(source: &mut impl Read, buffer: &mut [u8]) -> std::result::Result<(), ReadFailure> {
+    source.read_exact(buffer).map_err(|e| match e.kind() {
+        std::io::ErrorKind::UnexpectedEof => ReadFailure::Fault(ProfileFault::Truncated),
+        _ => ReadFailure::Io(e),
+    })
+}
+
 impl Profile {
     /// Serialises the profile to bytes.
     pub fn to_bytes(&self) -> Vec<u8> {
+        let mut out = Vec::new();
+        self.write_to(&mut out)
+            .expect("writing to memory does not fail");
+        out
+    }
+
+    /// Writes the profile, a section at a time (no copy of the large arrays is made).
+    pub fn write_to(&self, out: impl Write) -> std::io::Result<()> {
         let rows = self.index.rows();
-        let features = &self.features;
-        let feature_rows = features.rows().to_owned();
-        let feature_covariance = features.covariance().as_standard_layout().to_owned();
+        let features = self.features.as_ref().ok_or_else(|| {
+            std::io::Error::other("a profile loaded for scoring alone cannot be saved")
+        })?;
+        let index_rows = rows.as_standard_layout();
+        let feature_rows = features.rows();
+        let feature_rows = feature_rows.as_standard_layout();
+        let feature_covariance = features.covariance().as_standard_layout();
         let sections: [&[f64]; 8] = [
-            rows.as_slice().expect("index rows are in standard layout"),
+            index_rows.as_slice().expect("standard layout"),
             self.lof.k_distance(),
             self.lof.density(),
             self.calibration_mahalanobis.sorted(),
@@ -119,116 +183,180 @@ impl Profile {
                 .collect(),
         };
         let header = serde_json::to_vec(&header).expect("the header serialises");
-        let body: usize = sections.iter().map(|s| s.len() * 8).sum();
-        let mut out = Vec::with_capacity(PREAMBLE + header.len() + body + 4);
-        out.extend_from_slice(SIGNATURE);
-        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
-        out.extend_from_slice(&(header.len() as u64).to_le_bytes());
-        out.extend_from_slice(&header);
+        let mut out = HashingWriter {
+            inner: out,
+            hasher: crc32fast::Hasher::new(),
+        };
+        out.write_all(SIGNATURE)?;
+        out.write_all(&FORMAT_VERSION.to_le_bytes())?;
+        out.write_all(&(header.len() as u64).to_le_bytes())?;
+        out.write_all(&header)?;
+        let mut piece = Vec::with_capacity(PIECE_BYTES);
         for section in sections {
-            for v in section {
-                out.extend_from_slice(&v.to_le_bytes());
+            for values in section.chunks(PIECE_BYTES / 8) {
+                piece.clear();
+                for v in values {
+                    piece.extend_from_slice(&v.to_le_bytes());
+                }
+                out.write_all(&piece)?;
             }
         }
-        let crc = crc32fast::hash(&out);
-        out.extend_from_slice(&crc.to_le_bytes());
-        out
+        let crc = out.hasher.clone().finalize();
+        out.inner.write_all(&crc.to_le_bytes())?;
+        out.flush()
     }
 
     /// Writes the profile whole or not at all (a temporary file beside it, then a rename).
     pub fn save(&self, path: &Path) -> Result<()> {
-        crate::output::write_atomically(path, |w| w.write_all(&self.to_bytes()))
+        crate::output::write_atomically(path, |w| self.write_to(w))
     }
 
-    /// Reads and validates a profile file.
+    /// Reads and validates a whole profile file.
     pub fn load(path: &Path) -> Result<Profile> {
-        let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-        Profile::from_bytes(&bytes).map_err(|fault| Error::Profile {
+        Profile::load_scoped(path, ProfileScope::Complete)
+    }
+
+    /// Reads and validates a profile file, keeping what `scope` needs. The file is read
+    /// once, sequentially, a piece at a time; the checksum covers every byte either way.
+    pub fn load_scoped(path: &Path, scope: ProfileScope) -> Result<Profile> {
+        let fault = |fault| Error::Profile {
             path: path.to_path_buf(),
             fault,
+        };
+        let file = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+        let length = file.metadata().map_err(|e| Error::io(path, e))?.len();
+        let reader = std::io::BufReader::with_capacity(PIECE_BYTES, file);
+        read_profile(reader, length, scope).map_err(|failure| match failure {
+            ReadFailure::Io(e) => Error::io(path, e),
+            ReadFailure::Fault(f) => fault(f),
         })
     }
 
     /// Parses and validates profile bytes.
     pub fn from_bytes(bytes: &[u8]) -> std::result::Result<Profile, ProfileFault> {
-        if bytes.len() < SIGNATURE.len() || &bytes[..SIGNATURE.len()] != SIGNATURE {
-            return Err(ProfileFault::NotAProfile);
-        }
-        if bytes.len() < PREAMBLE + 4 {
-            return Err(ProfileFault::Truncated);
-        }
-        let version = u32::from_le_bytes(bytes[12..16].try_into().expect("4 bytes"));
-        if version != FORMAT_VERSION {
-            return Err(ProfileFault::Version {
-                found: version,
-                supported: FORMAT_VERSION,
-            });
-        }
-        let header_len = u64::from_le_bytes(bytes[16..24].try_into().expect("8 bytes"));
-        let header_end = usize::try_from(header_len)
-            .ok()
-            .and_then(|h| h.checked_add(PREAMBLE))
-            .filter(|&end| end + 4 <= bytes.len())
-            .ok_or(ProfileFault::Truncated)?;
-        let header: Header = serde_json::from_slice(&bytes[PREAMBLE..header_end])
-            .map_err(|e| ProfileFault::Inconsistent(format!("header: {e}")))?;
-        if header.sections.len() != SECTION_NAMES.len() {
-            return Err(ProfileFault::Inconsistent(format!(
-                "{} sections where {} belong",
-                header.sections.len(),
-                SECTION_NAMES.len()
-            )));
-        }
-        let body: usize = header
-            .sections
-            .iter()
-            .try_fold(0usize, |acc, s| {
-                s.len.checked_mul(8).and_then(|b| acc.checked_add(b))
-            })
-            .ok_or(ProfileFault::Truncated)?;
-        let expected_len = header_end
-            .checked_add(body)
-            .and_then(|v| v.checked_add(4))
-            .ok_or(ProfileFault::Truncated)?;
-        if bytes.len() < expected_len {
-            return Err(ProfileFault::Truncated);
-        }
-        if bytes.len() > expected_len {
-            return Err(ProfileFault::Inconsistent(format!(
-                "{} bytes after the declared content",
-                bytes.len() - expected_len
-            )));
-        }
-        let stored_crc = u32::from_le_bytes(bytes[expected_len - 4..].try_into().expect("4 bytes"));
-        if crc32fast::hash(&bytes[..expected_len - 4]) != stored_crc {
-            return Err(ProfileFault::Checksum);
-        }
-        if header.format != FORMAT_NAME {
-            return Err(ProfileFault::NotAProfile);
-        }
-        let mut sections = Vec::with_capacity(SECTION_NAMES.len());
-        let mut at = header_end;
-        for (section, expected) in header.sections.iter().zip(SECTION_NAMES) {
-            if section.name != expected {
-                return Err(ProfileFault::Inconsistent(format!(
-                    "section \"{}\" where \"{expected}\" belongs",
-                    section.name
-                )));
+        read_profile(bytes, bytes.len() as u64, ProfileScope::Complete).map_err(|failure| {
+            match failure {
+                ReadFailure::Io(_) => ProfileFault::Truncated,
+                ReadFailure::Fault(f) => f,
             }
-            let data: Vec<f64> = bytes[at..at + section.len * 8]
-                .chunks_exact(8)
-                .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")))
-                .collect();
-            at += section.len * 8;
-            sections.push(data);
-        }
-        build(header, sections)
+        })
     }
+}
+
+/// Reads a profile of `length` bytes from `source`. Every length the header declares is
+/// checked against `length` before anything that large is allocated.
+fn read_profile(
+    mut source: impl Read,
+    length: u64,
+    scope: ProfileScope,
+) -> std::result::Result<Profile, ReadFailure> {
+    let mut preamble = [0u8; PREAMBLE];
+    if length < SIGNATURE.len() as u64 {
+        return Err(ProfileFault::NotAProfile.into());
+    }
+    read_exact(&mut source, &mut preamble[..SIGNATURE.len()])?;
+    if &preamble[..SIGNATURE.len()] != SIGNATURE {
+        return Err(ProfileFault::NotAProfile.into());
+    }
+    if length < (PREAMBLE + 4) as u64 {
+        return Err(ProfileFault::Truncated.into());
+    }
+    read_exact(&mut source, &mut preamble[SIGNATURE.len()..])?;
+    let version = u32::from_le_bytes(preamble[12..16].try_into().expect("4 bytes"));
+    if version != FORMAT_VERSION {
+        return Err(ProfileFault::Version {
+            found: version,
+            supported: FORMAT_VERSION,
+        }
+        .into());
+    }
+    let header_len = u64::from_le_bytes(preamble[16..24].try_into().expect("8 bytes"));
+    let header_end = header_len
+        .checked_add(PREAMBLE as u64)
+        .filter(|&end| end + 4 <= length)
+        .ok_or(ProfileFault::Truncated)?;
+    let mut header_bytes = vec![0u8; (header_end - PREAMBLE as u64) as usize];
+    read_exact(&mut source, &mut header_bytes)?;
+    let mut hasher = crc32fast::Hasher::new();
+    hasher.update(&preamble);
+    hasher.update(&header_bytes);
+    let header: Header = serde_json::from_slice(&header_bytes)
+        .map_err(|e| ProfileFault::Inconsistent(format!("header: {e}")))?;
+    drop(header_bytes);
+    if header.sections.len() != SECTION_NAMES.len() {
+        return Err(ProfileFault::Inconsistent(format!(
+            "{} sections where {} belong",
+            header.sections.len(),
+            SECTION_NAMES.len()
+        ))
+        .into());
+    }
+    let body = header
+        .sections
+        .iter()
+        .try_fold(0u64, |acc, s| {
+            (s.len as u64)
+                .checked_mul(8)
+                .and_then(|b| acc.checked_add(b))
+        })
+        .ok_or(ProfileFault::Truncated)?;
+    let expected_len = header_end
+        .checked_add(body)
+        .and_then(|v| v.checked_add(4))
+        .ok_or(ProfileFault::Truncated)?;
+    if length < expected_len {
+        return Err(ProfileFault::Truncated.into());
+    }
+    if length > expected_len {
+        return Err(ProfileFault::Inconsistent(format!(
+            "{} bytes after the declared content",
+            length - expected_len
+        ))
+        .into());
+    }
+    let mut sections = Vec::with_capacity(SECTION_NAMES.len());
+    let mut piece = vec![0u8; PIECE_BYTES];
+    for (section, expected) in header.sections.iter().zip(SECTION_NAMES) {
+        if section.name != expected {
+            return Err(ProfileFault::Inconsistent(format!(
+                "section \"{}\" where \"{expected}\" belongs",
+                section.name
+            ))
+            .into());
+        }
+        let keep = scope == ProfileScope::Complete || expected != "feature_rows";
+        let mut data: Vec<f64> = Vec::with_capacity(if keep { section.len } else { 0 });
+        let mut left = section.len * 8;
+        while left > 0 {
+            let step = left.min(PIECE_BYTES);
+            read_exact(&mut source, &mut piece[..step])?;
+            hasher.update(&piece[..step]);
+            if keep {
+                data.extend(
+                    piece[..step]
+                        .chunks_exact(8)
+                        .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes"))),
+                );
+            }
+            left -= step;
+        }
+        sections.push(data);
+    }
+    let mut stored = [0u8; 4];
+    read_exact(&mut source, &mut stored)?;
+    if hasher.finalize() != u32::from_le_bytes(stored) {
+        return Err(ProfileFault::Checksum.into());
+    }
+    if header.format != FORMAT_NAME {
+        return Err(ProfileFault::NotAProfile.into());
+    }
+    Ok(build(header, sections, scope)?)
 }
 
 fn build(
     header: Header,
     mut sections: Vec<Vec<f64>>,
+    scope: ProfileScope,
 ) -> std::result::Result<Profile, ProfileFault> {
     let bad = |what: &str| ProfileFault::Inconsistent(what.to_string());
     let mut header = header;
@@ -263,6 +391,7 @@ fn build(
         || feature_covariance.len() != p * p
         || p == 0
         || feature_rows.len() % p != 0
+        || (scope == ProfileScope::Complete && feature_rows.is_empty())
     {
         return Err(bad("the feature distribution has the wrong size"));
     }
@@ -305,15 +434,22 @@ fn build(
     debug_assert_eq!(index.len(), n);
     let lof =
         LocalOutlierFactor::from_parts(k_distance, density).ok_or_else(|| bad("LOF state"))?;
-    let feature_rows = Array2::from_shape_vec((feature_rows.len() / p, p), feature_rows)
-        .map_err(|_| bad("feature rows"))?;
-    let features = FeatureDistribution::from_parts(
-        feature_rows,
-        Array1::from(feature_location),
-        Array2::from_shape_vec((p, p), feature_covariance)
-            .map_err(|_| bad("feature covariance"))?,
-    )
-    .ok_or_else(|| bad("the feature distribution"))?;
+    let features = match scope {
+        ProfileScope::Scoring => None,
+        ProfileScope::Complete => {
+            let feature_rows = Array2::from_shape_vec((feature_rows.len() / p, p), feature_rows)
+                .map_err(|_| bad("feature rows"))?;
+            Some(
+                FeatureDistribution::from_parts(
+                    feature_rows,
+                    Array1::from(feature_location),
+                    Array2::from_shape_vec((p, p), feature_covariance)
+                        .map_err(|_| bad("feature covariance"))?,
+                )
+                .ok_or_else(|| bad("the feature distribution"))?,
+            )
+        }
+    };
     Ok(Profile {
         settings: header.settings,
         feature_names: header.feature_names,

@@ -17,7 +17,7 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::corpus::FeatureMatrix;
+use crate::corpus::{FeatureMatrix, MatrixHeader};
 use crate::embedding::{column_mean_and_sd, Embedding, EmbeddingSpec, FittedEmbedding};
 use crate::error::{Error, Result};
 use crate::neighbours::{BruteForceIndex, Exclusion, LocalOutlierFactor, NeighbourIndex};
@@ -26,7 +26,7 @@ use crate::stats::{
     MahalanobisModel,
 };
 
-pub use format::{FORMAT_NAME, FORMAT_VERSION};
+pub use format::{ProfileScope, FORMAT_NAME, FORMAT_VERSION};
 
 /// The settings of `kilter fit`, validated.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -69,7 +69,8 @@ pub struct Profile {
     lof: LocalOutlierFactor,
     calibration_mahalanobis: CalibrationScores,
     calibration_knn: CalibrationScores,
-    features: FeatureDistribution,
+    /// The raw-feature distribution; left out when loaded for scoring alone.
+    features: Option<FeatureDistribution>,
 }
 
 /// The off-manifold scores of one input row (SPEC: `kilter score`).
@@ -174,7 +175,7 @@ impl ProfileSettings {
             lof,
             calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis.to_vec()),
             calibration_knn: CalibrationScores::new(calibration_knn.to_vec()),
-            features,
+            features: Some(features),
         })
     }
 
@@ -268,8 +269,10 @@ impl Profile {
     }
 
     /// The raw-feature distribution of the fitted rows (for the replacement samplers).
-    pub fn feature_distribution(&self) -> &FeatureDistribution {
-        &self.features
+    pub fn feature_distribution(&self) -> Result<&FeatureDistribution> {
+        self.features.as_ref().ok_or(Error::PartialProfile {
+            missing: "the raw fitted rows (it was loaded for scoring alone)",
+        })
     }
 
     /// Calibration scores of the squared Mahalanobis distance.
@@ -309,14 +312,14 @@ impl Profile {
 
     /// Checks that an input has the profile's columns: the same count and, when both
     /// sides have header names, the same names in the same order.
-    pub fn check_input(&self, input: &FeatureMatrix) -> Result<()> {
+    pub fn check_input(&self, input: MatrixHeader<'_>) -> Result<()> {
         let expected = self.feature_names.len();
-        if input.columns() != expected {
+        if input.names.len() != expected {
             return Err(Error::InputMismatch {
-                path: input.source.clone(),
+                path: input.source.to_path_buf(),
                 detail: format!(
                     "has {} feature columns, the profile was fitted on {expected}{}",
-                    input.columns(),
+                    input.names.len(),
                     if self.named_features {
                         format!(" ({})", abbreviate(&self.feature_names))
                     } else {
@@ -328,7 +331,7 @@ impl Profile {
         if self.named_features && input.named {
             if let Some(c) = (0..expected).find(|&c| input.names[c] != self.feature_names[c]) {
                 return Err(Error::InputMismatch {
-                    path: input.source.clone(),
+                    path: input.source.to_path_buf(),
                     detail: format!(
                         "feature column {} is \"{}\", the profile expects \"{}\" there \
                          (columns must come in the profile's order)",
