@@ -116,6 +116,10 @@ pub struct ScoreArgs {
     /// Significance level for `off_manifold`.
     #[arg(long, default_value_t = 0.01, value_name = "A")]
     pub alpha: f64,
+    /// Print on stderr how long each phase took: loading the profile, reading the input,
+    /// scoring (embedding, distances, neighbours, p-values) and writing the records.
+    #[arg(long)]
+    pub timings: bool,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }

@@ -21,7 +21,7 @@
 //!
 //! Rows are split into chunks (the fixed batch; otherwise an equal share per core, between
 //! 64 and 512 rows) that run in parallel with rayon on the one optimized plan, which is
-//! shared across threads (each run spawns its own state).
+//! shared across threads; each thread runs it on a state of its own, kept between chunks.
 //! ONNX models give no gradients here; callers use finite differences, with the step set
 //! by [`Model::precision`]: the epsilon of the least precise floating-point type anywhere in
 //! the optimized graph (single precision for a float graph, and for every tree ensemble,
@@ -31,15 +31,15 @@ use std::cell::Cell;
 use std::collections::{HashMap, HashSet};
 use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::Path;
-use std::sync::Arc;
 use std::sync::Once;
+use std::sync::{Arc, Mutex};
 
 use ndarray::{Array2, ArrayView2, Axis};
 use rayon::prelude::*;
 use tract_onnx::pb;
 use tract_onnx::prelude::{
-    tvec, DatumType, Framework, InferenceFact, InferenceModelExt, IntoRunnable, TDim, Tensor,
-    ToDim, TypedRunnableModel,
+    tvec, DatumType, Framework, InferenceFact, InferenceModelExt, IntoRunnable, TDim, TValue, TVec,
+    Tensor, ToDim, TractResult, TypedRunnableModel, TypedSimpleState,
 };
 use tract_onnx::Onnx;
 
@@ -65,10 +65,13 @@ enum InputType {
 }
 
 /// A loaded ONNX model, optimized and ready to run.
-#[derive(Debug, Clone)]
+#[derive(Debug)]
 pub struct OnnxModel {
     name: String,
     plan: Arc<TypedRunnableModel>,
+    /// Idle run states (tract's sessions), at most one per thread that ran the model at
+    /// once: a state keeps its buffers between chunks instead of allocating them anew.
+    states: Mutex<Vec<TypedSimpleState>>,
     inputs: usize,
     input_type: InputType,
     /// `Some(N)` when the model's batch dimension is fixed.
@@ -161,6 +164,20 @@ impl OnnxModel {
 
     /// Runs one chunk (at most one batch for a fixed-batch model), a runtime panic
     /// becoming a typed error.
+    /// Runs the plan on an idle state, or a new one; a state that failed is dropped.
+    fn run_plan(&self, inputs: TVec<TValue>) -> TractResult<TVec<TValue>> {
+        let idle = self.states.lock().ok().and_then(|mut idle| idle.pop());
+        let mut state = match idle {
+            Some(state) => state,
+            None => self.plan.spawn()?,
+        };
+        let outputs = state.run(inputs)?;
+        if let Ok(mut idle) = self.states.lock() {
+            idle.push(state);
+        }
+        Ok(outputs)
+    }
+
     fn run_chunk(&self, chunk: ArrayView2<'_, f64>) -> Result<Array2<f64>> {
         match guarded(|| self.run_chunk_unguarded(chunk)) {
             Ok(result) => result,
@@ -187,8 +204,7 @@ impl OnnxModel {
         }
         .map_err(|e| self.failure(format!("could not build the input tensor: {e:#}")))?;
         let outputs = self
-            .plan
-            .run(tvec![input.into()])
+            .run_plan(tvec![input.into()])
             .map_err(|e| self.failure(format!("inference failed: {e:#}")))?;
         let answer = outputs
             .into_iter()
@@ -645,6 +661,7 @@ fn load_bytes(path: &Path, bytes: &[u8], output: Option<&str>) -> Result<OnnxMod
     let mut model = OnnxModel {
         name: path.display().to_string(),
         plan,
+        states: Mutex::new(Vec::new()),
         inputs: width,
         input_type,
         fixed_batch,
