@@ -30,6 +30,7 @@ import argparse
 import json
 import os
 import platform
+import re
 import shlex
 import shutil
 import subprocess
@@ -198,6 +199,17 @@ def bench_kilter(kilter, ref_path, query_path, work, runs):
     probe_cmd = [kilter, "--quiet", "score", "--profile", profile, "--input", one_row,
                  "--out", os.path.join(work, "one.jsonl")]
     probe_s, _, _, _ = best_of(runs, lambda: run_command(probe_cmd))
+
+    # kilter's own account of the phases (--timings), best of the runs by total.
+    timings_cmd = score_cmd + ["--timings"]
+    phases = None
+    for _ in range(runs):
+        done = subprocess.run(timings_cmd, check=True, capture_output=True, text=True)
+        line = next(l for l in done.stderr.splitlines() if l.startswith("timings:"))
+        found = {name: float(value) for name, value in
+                 re.findall(r"(load|read|score|write|total) ([0-9.]+) s", line)}
+        if phases is None or found["total"] < phases["total"]:
+            phases = found
     return {
         "fit_s": fit_s,
         "fit_foreign_cpu_s": fit_foreign,
@@ -205,8 +217,10 @@ def bench_kilter(kilter, ref_path, query_path, work, runs):
         "score_s": score_s,
         "score_foreign_cpu_s": score_foreign,
         "one_row_score_s": probe_s,
+        "phases_s": phases,
         "profile_bytes": os.path.getsize(profile),
-        "commands": [shlex.join(fit_cmd), shlex.join(score_cmd), shlex.join(probe_cmd)],
+        "commands": [shlex.join(fit_cmd), shlex.join(score_cmd), shlex.join(probe_cmd),
+                     shlex.join(timings_cmd)],
     }, records
 
 
@@ -430,6 +444,22 @@ def mismatch_lines(peer, kilter, got, rows, shown=10):
 # ----------------------------------------------------------------------------- machine
 
 
+def matmul_rate(runs):
+    """This machine's single-precision matrix-multiply rate: numpy's (OpenBLAS) float32
+    product of two 4096 x 4096 matrices on every core, best of `runs`, in flop/s."""
+    n = 4096
+    rng = np.random.default_rng(0)
+    a = rng.standard_normal((n, n), dtype=np.float32)
+    b = rng.standard_normal((n, n), dtype=np.float32)
+    a @ b  # warm-up
+    best = float("inf")
+    for _ in range(max(runs, 3)):
+        start = time.perf_counter()
+        a @ b
+        best = min(best, time.perf_counter() - start)
+    return 2.0 * n ** 3 / best
+
+
 def machine():
     cpu = "unknown"
     try:
@@ -487,6 +517,8 @@ def main():
                   f"Run as: env -u OPENBLAS_CORETYPE -u OPENBLAS_L2_SIZE python3 ...",
                   file=sys.stderr)
 
+    rate = matmul_rate(args.runs)
+    print(f"float32 matrix multiply: {rate / 1e9:.1f} GFLOP/s", file=sys.stderr)
     names = list(WORKLOADS) if args.workload == "all" else [args.workload]
     work = tempfile.mkdtemp(prefix="kilter-peer-")
     results = []
@@ -544,6 +576,7 @@ def main():
             "faiss_blas_threshold": int(faiss.cvar.distance_compute_blas_threshold),
             "openblas_env": {v: os.environ.get(v) for v in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")},
             "command": shlex.join([sys.executable, *sys.argv]), "runs": args.runs,
+            "matmul_flops_per_s": rate,
             "seed": args.seed, "results": results}
     print_report(info)
     if args.json:
@@ -592,6 +625,22 @@ def print_report(info):
                    f"| {fs / ks:.2f}x | {ss / ks:.2f}x "
                    f"| {cell(r['kilter']['fit_s'], r['kilter']['fit_foreign_cpu_s'])} |")
     out.append("")
+    rate = info["matmul_flops_per_s"]
+    out.append(f"### Against the floor ({rate / 1e9:.0f} GFLOP/s, numpy float32 4096^3 product)\n")
+    out.append("The floor is the distance work's flops, 2 x reference rows x queries x dimension "
+               "(the one matrix product every exact search needs), over the machine's measured "
+               "matrix-multiply rate. kilter's scoring phase (`--timings`: embedding, Mahalanobis, "
+               "the k-NN search with its exact re-ranking, LOF, p-values) and its whole run are "
+               "set against it.\n")
+    out.append("| workload | floor (s) | kilter scoring phase (s) | x floor | kilter end to end (s) | x floor |")
+    out.append("| --- | ---: | ---: | ---: | ---: | ---: |")
+    for r in info["results"]:
+        floor = 2.0 * r["reference_rows"] * r["queries"] * r["dim"] / rate
+        phase = r["kilter"]["phases_s"]["score"]
+        whole = r["kilter"]["score_s"]
+        out.append(f"| {r['workload']} | {floor:.3f} | {phase:.3f} | {phase / floor:.2f} "
+                   f"| {whole:.3f} | {whole / floor:.2f} |")
+    out.append("")
     if flagged:
         out.append(f"\\* other processes used more than {BUSY_FRACTION:.0%} of the machine's CPU "
                    "during the best run: the number is not trustworthy; rerun on "
@@ -606,6 +655,7 @@ def print_report(info):
         k = r["kilter"]
         out.append(f"- {r['workload']}: kilter score runs "
                    + run_list(k["score_runs_s"])
+                   + " s; phases " + ", ".join(f"{n} {v:.3f}" for n, v in k["phases_s"].items())
                    + f" s; a 1-row input takes {k['one_row_score_s']:.3f} s (process start + profile "
                    f"load, profile {k['profile_bytes'] / 1e6:.1f} MB); fit {k['fit_s']:.2f} s. "
                    f"Best score run used {cores_used(k['score_runs_s'], k['score_s']):.2f} cores; "
