@@ -206,6 +206,14 @@ impl Profile {
         if header.format != FORMAT_NAME {
             return Err(ProfileFault::NotAProfile);
         }
+        // The header repeats the version; a file whose two copies disagree was not
+        // written by this format either.
+        if header.version != FORMAT_VERSION {
+            return Err(ProfileFault::Version {
+                found: header.version,
+                supported: FORMAT_VERSION,
+            });
+        }
         let mut sections = Vec::with_capacity(SECTION_NAMES.len());
         let mut at = header_end;
         for (section, expected) in header.sections.iter().zip(SECTION_NAMES) {
