@@ -205,6 +205,13 @@ pub enum Error {
         found: usize,
     },
 
+    /// Every fitted reference row is the same point once embedded.
+    #[error(
+        "{path}: the {rows} fitted reference rows are identical (after the embedding), so no \
+         distance from them can be measured; the reference corpus needs rows that differ"
+    )]
+    IdenticalRows { path: PathBuf, rows: usize },
+
     /// The empirical covariance is singular.
     #[error(
         "the empirical covariance of the embedded reference rows ({dim} dimensions, {rows} rows) \

@@ -116,6 +116,16 @@ impl Groups {
                 expected: format!("an image of exactly {features} values, the input's width"),
             });
         }
+        if patch >= height && patch >= width {
+            return Err(Error::InvalidSetting {
+                flag: "--patch",
+                value: patch.to_string(),
+                expected: format!(
+                    "a side smaller than the {height}x{width} image; one patch covering the \
+                     whole image leaves nothing to compare"
+                ),
+            });
+        }
         let mut members = Vec::new();
         let mut names = Vec::new();
         for top in (0..height).step_by(patch) {
@@ -148,6 +158,9 @@ impl Groups {
         for (g, group) in members.iter().enumerate() {
             for &i in group {
                 if let Some(previous) = owner[i].replace(g) {
+                    if previous == g {
+                        return Err(format!("feature {i} appears twice in group {}", g + 1));
+                    }
                     return Err(format!(
                         "feature {i} is in group {} and in group {}; a feature may be in one group only",
                         previous + 1,

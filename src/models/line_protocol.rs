@@ -36,14 +36,6 @@ const MAX_LINE_BYTES: usize = 1 << 30;
 /// How long a child gets to exit after its stdin is closed.
 const EXIT_GRACE: Duration = Duration::from_secs(2);
 
-/// How a session failed.
-enum Broken {
-    /// An answer took longer than the timeout; the child was stopped.
-    TimedOut,
-    /// Any other failure, described.
-    Failed(String),
-}
-
 struct Session {
     child: Child,
     stdin: Option<ChildStdin>,
@@ -52,8 +44,19 @@ struct Session {
     outputs: Option<usize>,
     /// Whether the model has answered a gradient request with gradients.
     gives_gradients: Option<bool>,
-    /// Set once the session failed; every later call reports the same failure.
+    /// Set once the session failed; every later call reports the same failure, so that
+    /// whichever row's error is shown first names the cause.
     broken: Option<Broken>,
+}
+
+/// How a session failed.
+enum Broken {
+    /// It crashed, closed its output or could not be written to.
+    Failed(String),
+    /// It did not answer within the timeout and was stopped.
+    TimedOut,
+    /// It answered `{"error": MESSAGE}`.
+    Reported(String),
 }
 
 /// A model process speaking the line protocol.
@@ -156,6 +159,14 @@ impl LineProtocolModel {
         lines[lines.len().saturating_sub(12)..].join("\n")
     }
 
+    fn timed_out(&self) -> Error {
+        Error::ModelTimeout {
+            model: self.name(),
+            seconds: self.timeout.as_secs_f64(),
+            stderr_tail: self.stderr_tail(),
+        }
+    }
+
     fn failed(&self, session: &mut Session, detail: String) -> Error {
         // Give the stderr thread a moment to collect the child's last words.
         wait_for_exit(&mut session.child, Duration::from_millis(300));
@@ -180,23 +191,19 @@ impl LineProtocolModel {
         rows: ArrayView2<'_, f64>,
         gradients_for: Option<usize>,
     ) -> Result<Answer> {
-        match &session.broken {
-            None => {}
-            // Every caller hears the first failure itself, whichever thread met it.
-            Some(Broken::TimedOut) => {
-                return Err(Error::ModelTimeout {
-                    model: self.name(),
-                    seconds: self.timeout.as_secs_f64(),
-                    stderr_tail: self.stderr_tail(),
-                })
-            }
-            Some(Broken::Failed(detail)) => {
-                return Err(Error::ModelFailed {
+        if let Some(broken) = &session.broken {
+            return Err(match broken {
+                Broken::Failed(detail) => Error::ModelFailed {
                     model: self.name(),
                     detail: detail.clone(),
                     stderr_tail: self.stderr_tail(),
-                })
-            }
+                },
+                Broken::TimedOut => self.timed_out(),
+                Broken::Reported(message) => Error::ModelReported {
+                    model: self.name(),
+                    message: message.clone(),
+                },
+            });
         }
         let owned = rows.as_standard_layout();
         let request = Request {
@@ -236,11 +243,7 @@ impl LineProtocolModel {
             Err(RecvTimeoutError::Timeout) => {
                 let _ = session.child.kill();
                 session.broken = Some(Broken::TimedOut);
-                return Err(Error::ModelTimeout {
-                    model: self.name(),
-                    seconds: self.timeout.as_secs_f64(),
-                    stderr_tail: self.stderr_tail(),
-                });
+                return Err(self.timed_out());
             }
         };
         self.parse_answer(session, &text, rows.nrows(), rows.ncols(), gradients_for)
@@ -275,7 +278,7 @@ impl LineProtocolModel {
                 Value::String(s) => s.clone(),
                 other => other.to_string(),
             };
-            session.broken = Some(Broken::Failed(format!("it reported: {message}")));
+            session.broken = Some(Broken::Reported(message.clone()));
             return Err(Error::ModelReported {
                 model: self.name(),
                 message,

@@ -85,13 +85,16 @@ impl ModelSource {
                 expected: "at least 1 row per batch".into(),
             });
         }
-        if !(timeout_seconds.is_finite() && timeout_seconds > 0.0) {
-            return Err(Error::InvalidSetting {
+        // A value beyond what a Duration holds (about 5.8e11 years) is as wrong as a
+        // negative one, and converting it unchecked would panic.
+        let timeout = Duration::try_from_secs_f64(timeout_seconds)
+            .ok()
+            .filter(|t| !t.is_zero())
+            .ok_or_else(|| Error::InvalidSetting {
                 flag: "--model-timeout",
                 value: timeout_seconds.to_string(),
                 expected: "a positive number of seconds".into(),
-            });
-        }
+            })?;
         match (model, command) {
             (Some(path), None) => Ok(ModelSource::File { path, output }),
             (None, Some(command)) => {
@@ -105,7 +108,7 @@ impl ModelSource {
                 Ok(ModelSource::Command {
                     command,
                     batch_size,
-                    timeout: Duration::from_secs_f64(timeout_seconds),
+                    timeout,
                 })
             }
             (Some(_), Some(_)) => Err(Error::InvalidSetting {

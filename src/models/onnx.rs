@@ -19,9 +19,12 @@
 //!   are refused before any work with [`Error::OnnxOperator`], naming them, with advice for
 //!   the common cases (`ZipMap`: export without it).
 //!
-//! Rows are split into chunks (the fixed batch; otherwise an equal share per core, between
+//! Rows are split into chunks (the fixed batch; otherwise an eighth of the call, between
 //! 64 and 512 rows) that run in parallel with rayon on the one optimized plan, which is
 //! shared across threads; each thread runs it on a state of its own, kept between chunks.
+//! The split depends on the call alone, never on the number of threads: the runtime's
+//! vector kernels may round a row differently by its place in a chunk, and records must
+//! not change with the threads.
 //! ONNX models give no gradients here; callers use finite differences, with the step set
 //! by [`Model::precision`]: the epsilon of the least precise floating-point type anywhere in
 //! the optimized graph (single precision for a float graph, and for every tree ensemble,
@@ -50,6 +53,9 @@ use crate::error::{Error, Result};
 const CHUNK_ROWS: usize = 512;
 /// Smallest chunk worth a run of its own when spreading a call across cores.
 const MIN_CHUNK_ROWS: usize = 64;
+/// Chunks a large call is split into, whatever the number of threads (enough to keep
+/// eight cores busy).
+const SHARES: usize = 8;
 
 /// ONNX element types (`TensorProto.DataType`).
 const ONNX_FLOAT: i32 = 1;
@@ -155,10 +161,7 @@ impl OnnxModel {
     fn chunk_rows(&self, rows: usize) -> usize {
         match self.fixed_batch {
             Some(n) => n,
-            None => {
-                let threads = rayon::current_num_threads().max(1);
-                rows.div_ceil(threads).clamp(MIN_CHUNK_ROWS, CHUNK_ROWS)
-            }
+            None => rows.div_ceil(SHARES).clamp(MIN_CHUNK_ROWS, CHUNK_ROWS),
         }
     }
 
@@ -309,11 +312,11 @@ impl Model for OnnxModel {
     }
 
     fn preferred_batch(&self) -> usize {
-        let threads = rayon::current_num_threads().max(1);
+        // Independent of the thread count, like the chunks: callers batch by it.
         match self.fixed_batch {
-            // Whole batches, enough of them to keep every core busy.
-            Some(n) => n * CHUNK_ROWS.div_ceil(n) * threads,
-            None => CHUNK_ROWS * threads,
+            // Whole batches, enough of them to keep the cores busy.
+            Some(n) => n * CHUNK_ROWS.div_ceil(n) * SHARES,
+            None => CHUNK_ROWS * SHARES,
         }
     }
 

@@ -350,6 +350,15 @@ fn read_profile(
     if header.format != FORMAT_NAME {
         return Err(ProfileFault::NotAProfile.into());
     }
+    // The header repeats the version; a file whose two copies disagree was not written by
+    // this format either.
+    if header.version != FORMAT_VERSION {
+        return Err(ProfileFault::Version {
+            found: header.version,
+            supported: FORMAT_VERSION,
+        }
+        .into());
+    }
     Ok(build(header, sections, scope)?)
 }
 

@@ -140,6 +140,15 @@ impl ProfileSettings {
 
         let embedding = self.embed.fit(fit_values.view(), &reference.names)?;
         let embedded_fit = embedding.embed(fit_values.view())?;
+        // Without any spread every covariance is zero, and the singular-covariance advice
+        // (shrink, reduce the dimension) would not help.
+        let first = embedded_fit.row(0);
+        if embedded_fit.outer_iter().all(|row| row == first) {
+            return Err(Error::IdenticalRows {
+                path: reference.source.clone(),
+                rows: embedded_fit.nrows(),
+            });
+        }
         let features = FeatureDistribution::fit(fit_values)?;
         let estimate = self.covariance.estimate(embedded_fit.view())?;
         let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
@@ -179,6 +188,31 @@ impl ProfileSettings {
         })
     }
 
+    /// Rows held out for calibration out of `n`.
+    fn calibration_rows(&self, n: usize) -> usize {
+        (((n as f64) * self.holdout).round() as usize).min(n)
+    }
+
+    /// The fewest rows that leave `fitting` rows to fit and at least one to calibrate
+    /// under `--holdout` (0 < holdout < 1).
+    fn least_rows(&self, fitting: usize) -> usize {
+        // n - round(n h) >= fitting needs about n >= (fitting - 1/2) / (1 - h), and
+        // round(n h) >= 1 needs n h >= 1/2; start just below both and step up.
+        let below = ((fitting as f64 - 0.5) / (1.0 - self.holdout))
+            .max(0.5 / self.holdout)
+            .floor()
+            .min(usize::MAX as f64 / 2.0) as usize;
+        let start = below.saturating_sub(2).max(fitting + 1);
+        // A few steps suffice; the bound only guards holdouts within 1e-15 of 1, where
+        // the product loses its integer precision.
+        (start..start.saturating_add(64))
+            .find(|&n| {
+                let n_cal = self.calibration_rows(n);
+                n_cal > 0 && n - n_cal >= fitting
+            })
+            .unwrap_or(start)
+    }
+
     /// Seeded split into fitting rows and (for `holdout > 0`) calibration rows, each in
     /// ascending order so that the result does not depend on the shuffle beyond membership.
     fn split(&self, n: usize) -> Result<(Vec<usize>, Option<Vec<usize>>)> {
@@ -193,9 +227,8 @@ impl ProfileSettings {
             }
             return Ok(((0..n).collect(), None));
         }
-        let n_cal = ((n as f64) * self.holdout).round() as usize;
-        let n_fit = n.saturating_sub(n_cal);
-        if n_cal == 0 || n_fit < needed.max(2) {
+        let n_cal = self.calibration_rows(n);
+        if n_cal == 0 || n - n_cal < needed.max(2) {
             return Err(Error::TooFewRows {
                 what: format!(
                     "fitting with --k {} and --holdout {} (at least one calibration row and {} fitting rows)",
@@ -203,7 +236,7 @@ impl ProfileSettings {
                     self.holdout,
                     needed.max(2)
                 ),
-                needed: needed.max(2) + 1,
+                needed: self.least_rows(needed.max(2)),
                 found: n,
             });
         }
