@@ -8,11 +8,40 @@
 use std::fs::File;
 use std::io::{self, BufWriter, Write};
 use std::path::{Path, PathBuf};
+use std::sync::Mutex;
 
 use serde::Serialize;
 use serde_json::{Map, Value};
 
 use crate::error::{Error, Result};
+
+/// Temporary files being written. An interrupted run (Ctrl-C, SIGTERM) removes them, so it
+/// leaves neither a partial output nor a stray temporary file behind.
+static IN_FLIGHT: Mutex<Vec<PathBuf>> = Mutex::new(Vec::new());
+
+/// Removes every temporary output still being written and ends the process with status
+/// 130 (128 + SIGINT, common practice for an interrupted command). For the interrupt
+/// handler: the lock is held to the end, so no output is renamed into place meanwhile.
+pub fn abandon_outputs_and_exit() -> ! {
+    let in_flight = IN_FLIGHT.lock();
+    if let Ok(paths) = &in_flight {
+        for path in paths.iter() {
+            let _ = std::fs::remove_file(path);
+        }
+    }
+    eprintln!("kilter: interrupted; no output file was written");
+    std::process::exit(130)
+}
+
+fn track(path: &Path, in_flight: bool) {
+    if let Ok(mut paths) = IN_FLIGHT.lock() {
+        if in_flight {
+            paths.push(path.to_path_buf());
+        } else {
+            paths.retain(|p| p != path);
+        }
+    }
+}
 
 /// Writes `path` through `fill`, atomically.
 pub fn write_atomically(
@@ -20,11 +49,23 @@ pub fn write_atomically(
     fill: impl FnOnce(&mut BufWriter<&mut File>) -> io::Result<()>,
 ) -> Result<()> {
     let dir = parent_dir(path);
-    let mut temp = tempfile::Builder::new()
+    let temp = tempfile::Builder::new()
         .prefix(".kilter-")
         .suffix(".tmp")
         .tempfile_in(&dir)
         .map_err(|e| Error::io(path, e))?;
+    let temp_path = temp.path().to_path_buf();
+    track(&temp_path, true);
+    let result = finish_temp(temp, path, fill);
+    track(&temp_path, false);
+    result
+}
+
+fn finish_temp(
+    mut temp: tempfile::NamedTempFile,
+    path: &Path,
+    fill: impl FnOnce(&mut BufWriter<&mut File>) -> io::Result<()>,
+) -> Result<()> {
     {
         let mut writer = BufWriter::new(temp.as_file_mut());
         fill(&mut writer).map_err(|e| Error::io(path, e))?;

@@ -23,6 +23,9 @@ use kilter::{Error, Result};
 /// Runs the command line and returns the process exit status.
 pub fn main() -> ExitCode {
     let cli = args::Cli::parse();
+    // Ctrl-C or SIGTERM: outputs are written beside and renamed, so removing the unfinished
+    // temporary files leaves the directory as it was.
+    let _ = ctrlc::set_handler(|| kilter::output::abandon_outputs_and_exit());
     let context = Context {
         quiet: cli.quiet,
         progress: !cli.quiet && io::stderr().is_terminal(),

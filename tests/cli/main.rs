@@ -16,6 +16,7 @@ mod golden;
 mod groups;
 mod hostile;
 mod inputs;
+mod interrupt;
 mod models;
 mod neighbours;
 mod onnx;
