@@ -124,6 +124,111 @@ impl fmt::Display for ProfileFault {
     }
 }
 
+/// Why a neighbour index cannot be built, queried or restored.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum IndexFault {
+    /// The k-d tree supports embedded dimensions up to `max`.
+    DimensionUnsupported { dim: usize, max: usize },
+    /// More rows than the index can number.
+    TooManyRows { rows: usize, max: usize },
+    /// A row (1-based) of the indexed rows or of the queries holds NaN or an infinity.
+    NotFinite { what: &'static str, row: usize },
+    /// More neighbours asked than one graph search returns.
+    BeyondSearchWidth { wanted: usize, ef_search: usize },
+    /// The worker pool for a deterministic build could not be started.
+    WorkerPool(String),
+    /// Stored graph bytes are unusable.
+    Graph(GraphFault),
+}
+
+impl fmt::Display for IndexFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            IndexFault::DimensionUnsupported { dim, max } => write!(
+                f,
+                "the embedded dimension is {dim}, the k-d tree supports at most {max}; \
+                 reduce the dimension or use the brute-force index"
+            ),
+            IndexFault::TooManyRows { rows, max } => {
+                write!(f, "{rows} rows, the index holds at most {max}")
+            }
+            IndexFault::NotFinite { what, row } => {
+                write!(
+                    f,
+                    "row {row} of the {what} holds a value that is not finite"
+                )
+            }
+            IndexFault::BeyondSearchWidth { wanted, ef_search } => write!(
+                f,
+                "{wanted} candidates asked per query, one graph search returns at most \
+                 {ef_search} (ef_search); build the graph with a larger ef_search"
+            ),
+            IndexFault::WorkerPool(detail) => {
+                write!(f, "the build's worker thread could not start: {detail}")
+            }
+            IndexFault::Graph(fault) => write!(f, "the stored graph is unusable: {fault}"),
+        }
+    }
+}
+
+/// What is wrong with the bytes of a stored neighbour graph.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum GraphFault {
+    /// The bytes do not start with the graph signature.
+    NotAGraph,
+    /// Written by another format version.
+    Version { found: u32, supported: u32 },
+    /// The bytes end before their declared content, or go on past it.
+    Length,
+    /// The checksum does not match: the bytes were changed or damaged.
+    Checksum,
+    /// The graph was built on another number of rows or another dimension.
+    Shape {
+        stored_rows: u64,
+        stored_dim: u64,
+        rows: usize,
+        dim: usize,
+    },
+    /// The graph was built with other construction settings than those given.
+    Settings,
+    /// The graph's points are not the rows it is restored with.
+    Points,
+    /// The graph's encoding could not be read.
+    Decode(String),
+    /// The decoded graph breaks one of its invariants.
+    Structure(&'static str),
+}
+
+impl fmt::Display for GraphFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            GraphFault::NotAGraph => write!(f, "these bytes are not a kilter neighbour graph"),
+            GraphFault::Version { found, supported } => write!(
+                f,
+                "graph format version {found}, this kilter reads version {supported}"
+            ),
+            GraphFault::Length => write!(f, "the length does not match the declared content"),
+            GraphFault::Checksum => write!(f, "the checksum does not match"),
+            GraphFault::Shape {
+                stored_rows,
+                stored_dim,
+                rows,
+                dim,
+            } => write!(
+                f,
+                "it was built on {stored_rows} rows of dimension {stored_dim}, \
+                 restored with {rows} rows of dimension {dim}"
+            ),
+            GraphFault::Settings => {
+                write!(f, "it was built with other construction settings")
+            }
+            GraphFault::Points => write!(f, "its points are not the rows it is restored with"),
+            GraphFault::Decode(detail) => write!(f, "its encoding cannot be read ({detail})"),
+            GraphFault::Structure(what) => write!(f, "{what}"),
+        }
+    }
+}
+
 /// Every error of the library.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -296,6 +401,13 @@ pub enum Error {
         stderr_tail: String,
     },
 
+    /// A neighbour index cannot be built, queried or restored.
+    #[error("{index} neighbour index: {fault}")]
+    NeighbourIndex {
+        index: &'static str,
+        fault: IndexFault,
+    },
+
     /// An output path is unusable.
     #[error("{path}: {detail}")]
     Output { path: PathBuf, detail: String },
@@ -312,7 +424,11 @@ impl Error {
             | Error::ModelReported { .. }
             | Error::ModelFailed { .. }
             | Error::ModelTimeout { .. }
-            | Error::PartialProfile { .. } => 1,
+            | Error::PartialProfile { .. }
+            | Error::NeighbourIndex {
+                fault: IndexFault::WorkerPool(_),
+                ..
+            } => 1,
             Error::BelowBar { .. } => 3,
             _ => 2,
         }

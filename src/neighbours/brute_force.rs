@@ -10,13 +10,13 @@
 //! is therefore exact, not approximate; the fast pass only decides where to look.
 
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
-use rayon::prelude::*;
 
-use super::{Exclusion, NeighbourIndex, Neighbours};
-use crate::error::{Error, Result};
+use super::{
+    check_request, exact_squared_distance, exhaustive, nearest_first, search_in_blocks, Candidates,
+    Exclusion, NeighbourIndex, Neighbours,
+};
+use crate::error::Result;
 
-/// Queries per parallel task.
-const QUERY_BLOCK: usize = 256;
 /// Indexed rows per matrix-product tile: a 256 x 1024 f32 tile of products is 1 MiB.
 const ROW_TILE: usize = 1024;
 /// Extra candidates kept per query beyond k for the exact re-ranking.
@@ -91,43 +91,6 @@ impl BruteForceIndex {
     }
 }
 
-/// A bounded list of the best candidates so far, sorted ascending by distance.
-struct Candidates {
-    capacity: usize,
-    items: Vec<(f64, usize)>,
-}
-
-impl Candidates {
-    fn new(capacity: usize) -> Self {
-        Candidates {
-            capacity,
-            items: Vec::with_capacity(capacity + 1),
-        }
-    }
-
-    fn worst(&self) -> f64 {
-        if self.items.len() < self.capacity {
-            f64::INFINITY
-        } else {
-            self.items[self.items.len() - 1].0
-        }
-    }
-
-    #[inline]
-    fn offer(&mut self, d2: f64, index: usize) {
-        if d2 >= self.worst() && self.items.len() >= self.capacity {
-            return;
-        }
-        let at = self
-            .items
-            .partition_point(|&(d, i)| d < d2 || (d == d2 && i < index));
-        self.items.insert(at, (d2, index));
-        if self.items.len() > self.capacity {
-            self.items.pop();
-        }
-    }
-}
-
 /// Offers a row of approximate squared distances to a query's candidate list. Most
 /// entries lose to the current worst candidate, so blocks are first screened by their
 /// minimum, which compiles to vector instructions.
@@ -158,17 +121,6 @@ fn scan_row(
             }
         }
     }
-}
-
-#[inline]
-fn exact_squared_distance(a: ArrayView1<'_, f64>, b: ArrayView1<'_, f64>) -> f64 {
-    a.iter()
-        .zip(b.iter())
-        .map(|(x, y)| {
-            let t = x - y;
-            t * t
-        })
-        .sum()
 }
 
 impl BruteForceIndex {
@@ -225,7 +177,7 @@ impl BruteForceIndex {
                     .iter()
                     .map(|&(_, ri)| (exact_squared_distance(query, self.rows.row(ri)), ri))
                     .collect();
-                exact.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
+                exact.sort_by(nearest_first);
                 exact.truncate(k);
                 // A row not nominated has approximate distance >= boundary, so its exact
                 // distance is at least boundary - 2 x error. If that could beat the k-th
@@ -250,26 +202,11 @@ impl BruteForceIndex {
         k: usize,
         exclusion: Exclusion,
     ) -> Vec<(f64, usize)> {
-        let mut list = Candidates::new(k);
-        for (ri, row) in self.rows.outer_iter().enumerate() {
-            if exclusion == Exclusion::SameIndex && ri == own {
-                continue;
-            }
-            list.offer(exact_squared_distance(query, row), ri);
-        }
-        list.items
+        exhaustive(self.rows.view(), query, own, k, exclusion)
     }
 }
 
 impl NeighbourIndex for BruteForceIndex {
-    fn len(&self) -> usize {
-        self.rows.nrows()
-    }
-
-    fn dim(&self) -> usize {
-        self.rows.ncols()
-    }
-
     fn rows(&self) -> ArrayView2<'_, f64> {
         self.rows.view()
     }
@@ -280,101 +217,17 @@ impl NeighbourIndex for BruteForceIndex {
         k: usize,
         exclusion: Exclusion,
     ) -> Result<Neighbours> {
-        let available = self.len() - usize::from(exclusion == Exclusion::SameIndex).min(self.len());
-        if k == 0 || k > available {
-            return Err(Error::InvalidSetting {
-                flag: "--k",
-                value: k.to_string(),
-                expected: format!(
-                    "between 1 and {available} (the number of reference rows a point can have as neighbours)"
-                ),
-            });
-        }
-        if queries.ncols() != self.dim() {
-            return Err(Error::InvalidSetting {
-                flag: "queries",
-                value: format!("{} columns", queries.ncols()),
-                expected: format!("{} columns, the index's dimension", self.dim()),
-            });
-        }
-        if exclusion == Exclusion::SameIndex && queries.nrows() != self.len() {
-            return Err(Error::InvalidSetting {
-                flag: "queries",
-                value: format!("{} rows", queries.nrows()),
-                expected: format!("{} rows for in-sample search", self.len()),
-            });
-        }
-        let m = queries.nrows();
-        let blocks: Vec<Vec<Vec<(f64, usize)>>> = queries
-            .axis_chunks_iter(Axis(0), QUERY_BLOCK)
-            .into_par_iter()
-            .enumerate()
-            .map(|(b, block)| self.search_block(block, b * QUERY_BLOCK, k, exclusion))
-            .collect();
-        let mut indices = Array2::<usize>::zeros((m, k));
-        let mut distances = Array2::<f64>::zeros((m, k));
-        for (qi, list) in blocks.into_iter().flatten().enumerate() {
-            for (j, (d2, ri)) in list.into_iter().enumerate() {
-                indices[[qi, j]] = ri;
-                distances[[qi, j]] = d2.max(0.0).sqrt();
-            }
-        }
-        Ok(Neighbours { indices, distances })
+        check_request(self.len(), self.dim(), queries, k, exclusion)?;
+        Ok(search_in_blocks(queries, k, |block, first| {
+            self.search_block(block, first, k, exclusion)
+        }))
     }
 }
 
 #[cfg(test)]
 mod tests {
+    use super::super::conformance;
     use super::*;
-    use ndarray::array;
 
-    /// Hand-worked: points on a line at 0, 1, 3, 6, 10; the query 2.9 has neighbours
-    /// 3 (0.1), 1 (1.9), 0 (2.9), and 6 (3.1) only fourth.
-    #[test]
-    fn neighbours_on_a_line() {
-        let index = BruteForceIndex::new(array![[0.0], [1.0], [3.0], [6.0], [10.0]]);
-        let nn = index
-            .k_nearest(array![[2.9]].view(), 3, Exclusion::None)
-            .unwrap();
-        assert_eq!(nn.indices.row(0).to_vec(), vec![2, 1, 0]);
-        let d = nn.distances.row(0).to_vec();
-        assert!(
-            (d[0] - 0.1).abs() < 1e-12 && (d[1] - 1.9).abs() < 1e-12 && (d[2] - 2.9).abs() < 1e-12
-        );
-    }
-
-    #[test]
-    fn self_exclusion_is_by_index_so_duplicates_count() {
-        let index = BruteForceIndex::new(array![[1.0, 1.0], [1.0, 1.0], [5.0, 5.0]]);
-        let nn = index
-            .k_nearest(index.rows(), 1, Exclusion::SameIndex)
-            .unwrap();
-        assert_eq!(nn.indices.column(0).to_vec(), vec![1, 0, 0]);
-        assert_eq!(nn.distances[[0, 0]], 0.0);
-    }
-
-    #[test]
-    fn k_beyond_the_rows_is_refused() {
-        let index = BruteForceIndex::new(array![[1.0], [2.0]]);
-        assert!(index
-            .k_nearest(array![[0.0]].view(), 3, Exclusion::None)
-            .is_err());
-        assert!(index
-            .k_nearest(index.rows(), 2, Exclusion::SameIndex)
-            .is_err());
-    }
-
-    /// Points far from the origin, close to each other: the product form cancels almost
-    /// every digit, the exact re-ranking must still order them.
-    #[test]
-    fn exact_despite_cancellation() {
-        let base = 1e8;
-        let rows = Array2::from_shape_fn((50, 3), |(i, j)| base + (i * 3 + j) as f64 * 1e-4);
-        let index = BruteForceIndex::new(rows.clone());
-        let query = rows.slice(s![17..18, ..]).mapv(|v| v + 1e-6);
-        let nn = index.k_nearest(query.view(), 1, Exclusion::None).unwrap();
-        assert_eq!(nn.indices[[0, 0]], 17);
-        let expected = (3.0_f64 * 1e-12).sqrt();
-        assert!((nn.distances[[0, 0]] - expected).abs() < 1e-9 * expected.max(1e-9) + 1e-7);
-    }
+    conformance::shared_tests!(BruteForceIndex::new);
 }
