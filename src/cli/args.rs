@@ -95,9 +95,14 @@ pub struct FitArgs {
     /// Fraction of rows held out for calibration; 0 calibrates in-sample.
     #[arg(long, default_value_t = 0.2, value_name = "F")]
     pub holdout: f64,
-    /// Seed of the holdout split.
+    /// Seed of the holdout split (and of the approximate index's graph).
     #[arg(long, default_value_t = 0, value_name = "S")]
     pub seed: u64,
+    /// Neighbour index: auto (exact k-d tree up to 8 embedded dimensions, exact brute
+    /// force above), exact, tree, or approximate (a graph search for corpora of millions
+    /// of rows; its recall is measured and printed).
+    #[arg(long, default_value = "auto", value_name = "KIND")]
+    pub index: String,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }

@@ -1,6 +1,7 @@
 //! `kilter fit`: reference corpus in, profile out, with a short summary.
 
 use kilter::corpus::{read_matrix, CsvOptions};
+use kilter::neighbours::IndexChoice;
 use kilter::output::check_output_path;
 use kilter::profile::{Profile, ProfileSettings};
 use kilter::Result;
@@ -15,6 +16,7 @@ pub fn run(args: FitArgs, context: &Context) -> Result<()> {
         k: args.k,
         holdout: args.holdout,
         seed: args.seed,
+        index: IndexChoice::parse(&args.index, args.seed)?,
     };
     settings.validate()?;
     check_output_path(&args.out, &[&args.reference])?;
@@ -72,9 +74,19 @@ pub fn summary(profile: &Profile, path: &str) -> String {
         ),
         format!("  covariance       {shrinkage}"),
         format!(
-            "  neighbours       k = {}, exact search ({})",
+            "  neighbours       k = {}, {}{}",
             s.k,
-            kilter::linalg::BACKEND
+            s.index,
+            match profile.index_recall() {
+                Some(r) => format!(
+                    ", recall at k {r:.4} against the exact search on {} calibration rows",
+                    profile
+                        .calibration_mahalanobis()
+                        .len()
+                        .min(kilter::profile::RECALL_QUERIES)
+                ),
+                None => format!(" ({})", kilter::linalg::BACKEND),
+            }
         ),
         format!("  calibration      {calibration}"),
         format!(

@@ -12,6 +12,7 @@ mod brute_force;
 #[cfg(test)]
 mod conformance;
 mod lof;
+mod reference;
 mod tree;
 
 use ndarray::{Array2, ArrayView1, ArrayView2, Axis};
@@ -22,6 +23,7 @@ use crate::error::{Error, IndexFault, Result};
 pub use approximate::{ApproximateIndex, ApproximateSettings, GRAPH_CONNECTIONS};
 pub use brute_force::BruteForceIndex;
 pub use lof::LocalOutlierFactor;
+pub use reference::{IndexChoice, ReferenceIndex, TREE_AUTO_MAX_DIM};
 pub use tree::{TreeIndex, MAX_TREE_DIM};
 
 /// Whether a query may find itself among the indexed rows.

@@ -9,6 +9,7 @@
 //! 16  u64 LE    header length H
 //! 24  H bytes   header (UTF-8 JSON)
 //! ..  f64 LE    sections, in the order and lengths the header lists
+//! ..  G bytes   the approximate index's graph (`index_graph_bytes`; 0 for exact indexes)
 //! ..  u32 LE    CRC-32 (IEEE) of every byte before it
 //! ```
 //!
@@ -25,13 +26,16 @@ use serde::{Deserialize, Serialize};
 use super::{FeatureDistribution, Profile, ProfileSettings};
 use crate::embedding::{Embedding, FittedEmbedding};
 use crate::error::{Error, ProfileFault, Result};
-use crate::neighbours::{BruteForceIndex, LocalOutlierFactor, NeighbourIndex};
+use crate::neighbours::{
+    ApproximateIndex, BruteForceIndex, IndexChoice, LocalOutlierFactor, NeighbourIndex,
+    ReferenceIndex, TreeIndex,
+};
 use crate::stats::{CalibrationScores, CovarianceEstimate, MahalanobisModel};
 
 /// The format's name, recorded in the header.
 pub const FORMAT_NAME: &str = "kilter-profile";
 /// The format version this build writes and reads.
-pub const FORMAT_VERSION: u32 = 2;
+pub const FORMAT_VERSION: u32 = 3;
 
 const SIGNATURE: &[u8; 12] = b"\x89KLTPROF\r\n\x1a\n";
 const PREAMBLE: usize = 12 + 4 + 8;
@@ -53,6 +57,8 @@ struct Header {
     covariance: Vec<Vec<f64>>,
     shrinkage: Option<f64>,
     sections: Vec<Section>,
+    index_recall: Option<f64>,
+    index_graph_bytes: usize,
 }
 
 #[derive(Serialize, Deserialize)]
@@ -137,6 +143,10 @@ impl Profile {
     /// Writes the profile, a section at a time (no copy of the large arrays is made).
     pub fn write_to(&self, out: impl Write) -> std::io::Result<()> {
         let rows = self.index.rows();
+        let graph = match &self.index {
+            ReferenceIndex::Approximate(index) => index.graph_bytes(),
+            ReferenceIndex::Exact(_) | ReferenceIndex::Tree(_) => Vec::new(),
+        };
         let features = self.features.as_ref().ok_or_else(|| {
             std::io::Error::other("a profile loaded for scoring alone cannot be saved")
         })?;
@@ -164,6 +174,8 @@ impl Profile {
             reference_rows: self.reference_rows,
             fitted_rows: rows.nrows(),
             embedded_dim: rows.ncols(),
+            index_recall: self.index_recall,
+            index_graph_bytes: graph.len(),
             embedding: self.embedding.clone(),
             location: self.estimate.location.to_vec(),
             covariance: self
@@ -201,6 +213,7 @@ impl Profile {
                 out.write_all(&piece)?;
             }
         }
+        out.write_all(&graph)?;
         let crc = out.hasher.clone().finalize();
         out.inner.write_all(&crc.to_le_bytes())?;
         out.flush()
@@ -302,6 +315,7 @@ fn read_profile(
         .ok_or(ProfileFault::Truncated)?;
     let expected_len = header_end
         .checked_add(body)
+        .and_then(|v| v.checked_add(header.index_graph_bytes as u64))
         .and_then(|v| v.checked_add(4))
         .ok_or(ProfileFault::Truncated)?;
     if length < expected_len {
@@ -342,6 +356,9 @@ fn read_profile(
         }
         sections.push(data);
     }
+    let mut graph = vec![0u8; header.index_graph_bytes];
+    read_exact(&mut source, &mut graph)?;
+    hasher.update(&graph);
     let mut stored = [0u8; 4];
     read_exact(&mut source, &mut stored)?;
     if hasher.finalize() != u32::from_le_bytes(stored) {
@@ -359,12 +376,13 @@ fn read_profile(
         }
         .into());
     }
-    Ok(build(header, sections, scope)?)
+    Ok(build(header, sections, &graph, scope)?)
 }
 
 fn build(
     header: Header,
     mut sections: Vec<Vec<f64>>,
+    graph: &[u8],
     scope: ProfileScope,
 ) -> std::result::Result<Profile, ProfileFault> {
     let bad = |what: &str| ProfileFault::Inconsistent(what.to_string());
@@ -437,10 +455,18 @@ fn build(
     };
     let mahalanobis = MahalanobisModel::new(&estimate, n)
         .map_err(|_| bad("the covariance is not positive definite"))?;
-    let index = BruteForceIndex::new(
-        Array2::from_shape_vec((n, d), rows).map_err(|_| bad("indexed rows"))?,
-    );
-    debug_assert_eq!(index.len(), n);
+    let rows = Array2::from_shape_vec((n, d), rows).map_err(|_| bad("indexed rows"))?;
+    let index_fault = |e: Error| ProfileFault::Inconsistent(format!("its neighbour index: {e}"));
+    let index = match header.settings.index {
+        IndexChoice::Exact if graph.is_empty() => ReferenceIndex::Exact(BruteForceIndex::new(rows)),
+        IndexChoice::Tree if graph.is_empty() => {
+            ReferenceIndex::Tree(TreeIndex::new(rows).map_err(index_fault)?)
+        }
+        IndexChoice::Approximate(settings) => ReferenceIndex::Approximate(
+            ApproximateIndex::from_graph_bytes(rows, graph, settings).map_err(index_fault)?,
+        ),
+        _ => return Err(bad("the neighbour index does not match its stored state")),
+    };
     let lof =
         LocalOutlierFactor::from_parts(k_distance, density).ok_or_else(|| bad("LOF state"))?;
     let features = match scope {
@@ -468,6 +494,7 @@ fn build(
         estimate,
         mahalanobis,
         index,
+        index_recall: header.index_recall,
         lof,
         calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis),
         calibration_knn: CalibrationScores::new(calibration_knn),

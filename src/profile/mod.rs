@@ -20,7 +20,10 @@ use serde::{Deserialize, Serialize};
 use crate::corpus::{FeatureMatrix, MatrixHeader};
 use crate::embedding::{column_mean_and_sd, Embedding, EmbeddingSpec, FittedEmbedding};
 use crate::error::{Error, Result};
-use crate::neighbours::{BruteForceIndex, Exclusion, LocalOutlierFactor, NeighbourIndex};
+use crate::neighbours::{
+    recall, BruteForceIndex, Exclusion, IndexChoice, LocalOutlierFactor, NeighbourIndex,
+    ReferenceIndex,
+};
 use crate::stats::{
     chi_square_tail, combine_p_values, CalibrationScores, CovarianceEstimate, CovarianceMethod,
     MahalanobisModel,
@@ -39,8 +42,10 @@ pub struct ProfileSettings {
     pub k: usize,
     /// Fraction of rows set aside for calibration; 0 calibrates in-sample.
     pub holdout: f64,
-    /// Seed of the holdout split.
+    /// Seed of the holdout split (and of an approximate index's graph).
     pub seed: u64,
+    /// The neighbour index; a fitted profile records the kind `auto` resolved to.
+    pub index: IndexChoice,
 }
 
 impl Default for ProfileSettings {
@@ -51,12 +56,56 @@ impl Default for ProfileSettings {
             k: 10,
             holdout: 0.2,
             seed: 0,
+            index: IndexChoice::Auto,
         }
     }
 }
 
+/// Calibration rows on which `fit` measures an approximate index's recall.
+pub const RECALL_QUERIES: usize = 1000;
+
+/// Recall at k of an approximate index over the first [`RECALL_QUERIES`] of `queries`
+/// (in-sample when `in_sample` holds their answers), against an exact search.
+fn measured_recall(
+    index: &ReferenceIndex,
+    queries: ArrayView2<'_, f64>,
+    in_sample: Option<&crate::neighbours::Neighbours>,
+    k: usize,
+) -> Result<Option<f64>> {
+    if index.choice().is_exact() {
+        return Ok(None);
+    }
+    let take = queries.nrows().min(RECALL_QUERIES);
+    let sample = queries.slice(ndarray::s![..take, ..]);
+    let exact = BruteForceIndex::new(index.rows().to_owned());
+    let (truth, answer) = match in_sample {
+        // In-sample answers exclude each row itself, by index: ask the exact index for
+        // one more and drop the row's own index.
+        Some(found) => {
+            let wide = exact.k_nearest(sample, (k + 1).min(exact.len()), Exclusion::None)?;
+            let mut truth = ndarray::Array2::<usize>::zeros((take, k));
+            for (q, row) in wide.indices.outer_iter().enumerate() {
+                for (j, &i) in row.iter().filter(|&&i| i != q).take(k).enumerate() {
+                    truth[[q, j]] = i;
+                }
+            }
+            let answer = found.indices.slice(ndarray::s![..take, ..]).to_owned();
+            (truth, answer)
+        }
+        None => (
+            exact.k_nearest(sample, k, Exclusion::None)?.indices,
+            index.k_nearest(sample, k, Exclusion::None)?.indices,
+        ),
+    };
+    let as_neighbours = |indices: ndarray::Array2<usize>| crate::neighbours::Neighbours {
+        distances: ndarray::Array2::zeros(indices.dim()),
+        indices,
+    };
+    Ok(Some(recall(&as_neighbours(truth), &as_neighbours(answer))))
+}
+
 /// A fitted reference profile.
-#[derive(Debug, Clone)]
+#[derive(Debug)]
 pub struct Profile {
     settings: ProfileSettings,
     feature_names: Vec<String>,
@@ -65,7 +114,9 @@ pub struct Profile {
     embedding: FittedEmbedding,
     estimate: CovarianceEstimate,
     mahalanobis: MahalanobisModel,
-    index: BruteForceIndex,
+    index: ReferenceIndex,
+    /// Recall at k of an approximate index against the exact search, measured at fit.
+    index_recall: Option<f64>,
     lof: LocalOutlierFactor,
     calibration_mahalanobis: CalibrationScores,
     calibration_knn: CalibrationScores,
@@ -153,14 +204,17 @@ impl ProfileSettings {
         let estimate = self.covariance.estimate(embedded_fit.view())?;
         let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
 
-        let index = BruteForceIndex::new(embedded_fit);
+        let index = ReferenceIndex::build(self.index, embedded_fit)?;
         let in_sample = index.k_nearest(index.rows(), self.k, Exclusion::SameIndex)?;
         let lof = LocalOutlierFactor::fit(&in_sample);
 
-        let (calibration_mahalanobis, calibration_knn) = match calibration_rows {
+        // Calibrated through the same index as every later score, so that the p-values
+        // stay valid when the index is approximate.
+        let (calibration_mahalanobis, calibration_knn, index_recall) = match calibration_rows {
             None => (
                 mahalanobis.squared_distances(index.rows()),
                 in_sample.distances.column(self.k - 1).to_owned(),
+                measured_recall(&index, index.rows(), Some(&in_sample), self.k)?,
             ),
             Some(rows) => {
                 let held_out = embedding.embed(reference.values.select(Axis(0), &rows).view())?;
@@ -168,12 +222,15 @@ impl ProfileSettings {
                 (
                     mahalanobis.squared_distances(held_out.view()),
                     nn.distances.column(self.k - 1).to_owned(),
+                    measured_recall(&index, held_out.view(), None, self.k)?,
                 )
             }
         };
+        let mut settings = self.clone();
+        settings.index = index.choice();
 
         Ok(Profile {
-            settings: self.clone(),
+            settings,
             feature_names: reference.names.clone(),
             named_features: reference.named,
             reference_rows: n,
@@ -181,6 +238,7 @@ impl ProfileSettings {
             estimate,
             mahalanobis,
             index,
+            index_recall,
             lof,
             calibration_mahalanobis: CalibrationScores::new(calibration_mahalanobis.to_vec()),
             calibration_knn: CalibrationScores::new(calibration_knn.to_vec()),
@@ -297,8 +355,14 @@ impl Profile {
     }
 
     /// The neighbour index over the embedded fitted rows.
-    pub fn index(&self) -> &BruteForceIndex {
+    pub fn index(&self) -> &ReferenceIndex {
         &self.index
+    }
+
+    /// Recall at k of an approximate index against the exact search, measured at fit on
+    /// up to [`RECALL_QUERIES`] calibration rows; `None` for an exact index.
+    pub fn index_recall(&self) -> Option<f64> {
+        self.index_recall
     }
 
     /// The raw-feature distribution of the fitted rows (for the replacement samplers).

@@ -9,6 +9,7 @@ use serde::Deserialize;
 
 use kilter::corpus::{read_matrix, CsvOptions};
 use kilter::embedding::EmbeddingSpec;
+use kilter::neighbours::IndexChoice;
 use kilter::profile::ProfileSettings;
 use kilter::stats::CovarianceMethod;
 
@@ -187,6 +188,9 @@ fn check_fitted(corpus: &str, config: &str) {
         k: golden.config.k,
         holdout: 0.0,
         seed: 0,
+        // The k-d tree for the 5-dimensional PCA cases, the brute force for the rest:
+        // both must give scikit-learn's neighbours.
+        index: IndexChoice::Auto,
     };
     let profile = settings.fit(&reference).unwrap();
     assert_eq!(profile.fitted_rows(), golden.n_fit);

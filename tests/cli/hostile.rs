@@ -822,7 +822,7 @@ fn profile_with_version(good: &[u8], version: u32, binary: bool) -> Vec<u8> {
         let header_len = u64::from_le_bytes(bytes[16..24].try_into().unwrap()) as usize;
         let header = std::str::from_utf8(&bytes[24..24 + header_len]).unwrap();
         let at = header
-            .find("\"version\":2")
+            .find(&format!("\"version\":{}", kilter::profile::FORMAT_VERSION))
             .expect("the header's version field")
             + 24;
         let edited = format!("\"version\":{version}");
@@ -860,12 +860,12 @@ fn profile_cases(good: &[u8]) -> Vec<Case> {
         (
             "binary-version",
             profile_with_version(good, 7, true),
-            vec!["format version 7", "reads version 2"],
+            vec!["format version 7", "reads version 3"],
         ),
         (
             "header-version",
-            profile_with_version(good, 3, false),
-            vec!["format version 3", "reads version 2"],
+            profile_with_version(good, 2, false),
+            vec!["format version 2", "reads version 3"],
         ),
     ];
     let mut cases = Vec::new();

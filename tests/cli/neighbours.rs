@@ -217,3 +217,80 @@ fn distances_closer_than_single_precision_are_still_ordered() {
     let tree = TreeIndex::new(rows.clone()).unwrap();
     check_index(&tree, &rows, &queries, 5, Exclusion::None);
 }
+
+/// `fit --index`: the exact tree and brute force give byte-identical records (both are
+/// exact searches: the definition of the k nearest neighbours); the approximate graph is
+/// stored in the profile, reloaded by `score`, and `fit` reports its recall. Breast cancer
+/// in `pca:5` (dimension 5, where `auto` takes the tree) and standardized (dimension 30).
+#[test]
+fn every_index_kind_fits_scores_and_reports() {
+    let dir = crate::harness::temp_dir();
+    let corpus = crate::harness::repo("reference-corpora/breast_cancer.csv");
+    let corpus = corpus.to_str().unwrap();
+    for embed in ["pca:5", "standardize"] {
+        let mut records = Vec::new();
+        for index in ["exact", "tree", "auto", "approximate"] {
+            let profile = format!("{}-{index}.kprofile", embed.replace(':', ""));
+            let fit = crate::harness::kilter(
+                dir.path(),
+                &[
+                    "fit",
+                    "--reference",
+                    corpus,
+                    "--label-column",
+                    "diagnosis",
+                    "--embed",
+                    embed,
+                    "--index",
+                    index,
+                    "--out",
+                    &profile,
+                ],
+            );
+            if index == "tree" && embed == "standardize" {
+                // 30 dimensions: beyond what the tree takes, refused before any output.
+                fit.expect_status(2).expect_stderr(&["16"]);
+                assert!(!dir.path().join(&profile).exists());
+                continue;
+            }
+            fit.expect_status(0);
+            if index == "approximate" {
+                assert!(fit.stdout.contains("recall at k"), "{}", fit.stdout);
+            }
+            let out = format!("{}-{index}.jsonl", embed.replace(':', ""));
+            crate::harness::kilter(
+                dir.path(),
+                &[
+                    "score",
+                    "--profile",
+                    &profile,
+                    "--input",
+                    corpus,
+                    "--label-column",
+                    "diagnosis",
+                    "--out",
+                    &out,
+                ],
+            )
+            .expect_status(0);
+            records.push((index, std::fs::read(dir.path().join(&out)).unwrap()));
+        }
+        let exact = &records[0].1;
+        for (index, bytes) in &records[1..] {
+            let scores = crate::harness::read_scores(
+                &dir.path()
+                    .join(format!("{}-{index}.jsonl", embed.replace(':', ""))),
+            );
+            assert_eq!(scores.len(), 569);
+            assert!(scores
+                .iter()
+                .all(|s| s.p_combined > 0.0 && s.p_combined <= 1.0));
+            if *index != "approximate" {
+                assert!(
+                    bytes == exact,
+                    "{embed}: {index} differs from the brute force"
+                );
+            }
+        }
+    }
+}
