@@ -30,7 +30,12 @@ const FAST_CHUNK_BYTES: usize = 4 << 20;
 
 pub(super) fn read_csv(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(&bytes);
+    parse_csv(path, &bytes, options)
+}
+
+/// Parses CSV bytes; `path` names the source in errors and in the matrix.
+pub(super) fn parse_csv(path: &Path, bytes: &[u8], options: &CsvOptions) -> Result<FeatureMatrix> {
+    let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
     // Without a quote character anywhere, every line is a record and every comma a
     // separator, so the file can be cut at line ends and parsed in parallel throughout.
     // Quoted files go through the full CSV reader.

@@ -52,6 +52,17 @@ pub fn read_matrix(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
     }
 }
 
+/// Parses the bytes of a CSV matrix file; `source` names it in errors (the path-based
+/// [`read_matrix`] reads the file and comes here).
+pub fn parse_csv(source: &Path, bytes: &[u8], options: &CsvOptions) -> Result<FeatureMatrix> {
+    csv_reader::parse_csv(source, bytes, options)
+}
+
+/// Parses the bytes of a `.npy` matrix file; `source` names it in errors.
+pub fn parse_npy(source: &Path, bytes: &[u8]) -> Result<FeatureMatrix> {
+    npy_reader::parse_npy(source, bytes)
+}
+
 fn extension(path: &Path) -> Option<String> {
     path.extension()
         .and_then(|e| e.to_str())

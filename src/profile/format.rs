@@ -168,7 +168,9 @@ impl Profile {
         let header_end = usize::try_from(header_len)
             .ok()
             .and_then(|h| h.checked_add(PREAMBLE))
-            .filter(|&end| end + 4 <= bytes.len())
+            // The file holds at least PREAMBLE + 4 bytes (checked above), so this cannot
+            // underflow; `end + 4` could overflow for a header length near usize::MAX.
+            .filter(|&end| end <= bytes.len() - 4)
             .ok_or(ProfileFault::Truncated)?;
         let header: Header = serde_json::from_slice(&bytes[PREAMBLE..header_end])
             .map_err(|e| ProfileFault::Inconsistent(format!("header: {e}")))?;
@@ -328,4 +330,52 @@ fn build(
         calibration_knn: CalibrationScores::new(calibration_knn),
         features,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A preamble in this file's layout (signature, version, header length) over `rest`.
+    fn preamble(header_len: u64, rest: &[u8]) -> Vec<u8> {
+        let mut out = SIGNATURE.to_vec();
+        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+        out.extend_from_slice(&header_len.to_le_bytes());
+        out.extend_from_slice(rest);
+        out
+    }
+
+    /// Found by the `profile_bytes` fuzz target (fuzz/regressions/profile_bytes/; its
+    /// first byte is the target's mode): a header length of 2^64 - 25 passed the bounds
+    /// check by overflowing `end + 4`, and slicing the header then panicked.
+    #[test]
+    fn a_header_length_near_the_largest_integer_is_truncation() {
+        let input = include_bytes!("../../fuzz/regressions/profile_bytes/header_length_overflow");
+        assert!(matches!(
+            Profile::from_bytes(&input[1..]),
+            Err(ProfileFault::Truncated)
+        ));
+        for header_len in [u64::MAX, u64::MAX - 24, u64::MAX - 25, u64::MAX - 27] {
+            let bytes = preamble(header_len, &[b'{'; 64]);
+            assert!(
+                matches!(Profile::from_bytes(&bytes), Err(ProfileFault::Truncated)),
+                "header length {header_len}"
+            );
+        }
+    }
+
+    /// The seed profiles of the fuzz target (fitted by `kilter fit` on iris rows, see
+    /// fuzz/make_seeds.py) must load: a seed this format refuses would leave the fuzzer
+    /// stuck at the signature or the checksum. The first byte is the target's mode.
+    #[test]
+    fn the_fuzz_seed_profiles_load() {
+        for seed in [
+            &include_bytes!("../../fuzz/seeds/profile_bytes/standardize_lw_k3_as_is")[..],
+            &include_bytes!("../../fuzz/seeds/profile_bytes/pca2_empirical_k2_in_sample_as_is")[..],
+        ] {
+            let profile = Profile::from_bytes(&seed[1..]).unwrap();
+            assert_eq!(profile.feature_names().len(), 4);
+            assert_eq!(profile.to_bytes(), &seed[1..]);
+        }
+    }
 }
