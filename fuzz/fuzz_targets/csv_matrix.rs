@@ -6,7 +6,10 @@
 //! which was dropped, every value finite. An accepted matrix is also written back as a
 //! fully quoted CSV and read again, which must give the same names and the same values
 //! bit for bit: this sends every unquoted input through the quoted reader as well, so the
-//! two code paths are checked against each other.
+//! two code paths are checked against each other. The written file starts with an extra
+//! id column, dropped on reading, so that the first-column byte-order-mark handling
+//! (U+FEFF is stripped from the start of the first name only) does not apply to the
+//! matrix's own first name, which may begin with U+FEFF after a space.
 
 #![no_main]
 
@@ -33,7 +36,16 @@ fuzz_target!(|data: &[u8]| {
     };
     check_well_formed(&matrix, &options);
 
-    let again = parse_csv(source, &quoted_csv(&matrix), &CsvOptions::default())
+    // An id column name that is none of the matrix's names.
+    let mut id = String::from("_");
+    while matrix.names.contains(&id) {
+        id.push('_');
+    }
+    let drop_id = CsvOptions {
+        id_columns: vec![id.clone()],
+        label_columns: vec![],
+    };
+    let again = parse_csv(source, &quoted_csv(&id, &matrix), &drop_id)
         .expect("a matrix written back as CSV reads again");
     assert_eq!(again.names, matrix.names, "names survive the round trip");
     assert_eq!(again.values.dim(), matrix.values.dim());
@@ -54,17 +66,19 @@ fn check_well_formed(matrix: &FeatureMatrix, options: &CsvOptions) {
     }
 }
 
-/// Every name quoted (quotes doubled), values in Rust's shortest round-trip form.
-fn quoted_csv(matrix: &FeatureMatrix) -> Vec<u8> {
-    let header: Vec<String> = matrix
-        .names
-        .iter()
+/// An `id` column, then the matrix: every name quoted (quotes doubled), values in Rust's
+/// shortest round-trip form.
+fn quoted_csv(id: &str, matrix: &FeatureMatrix) -> Vec<u8> {
+    let header: Vec<String> = std::iter::once(id)
+        .chain(matrix.names.iter().map(String::as_str))
         .map(|n| format!("\"{}\"", n.replace('"', "\"\"")))
         .collect();
     let mut text = header.join(",");
     text.push('\n');
-    for row in matrix.values.rows() {
-        let cells: Vec<String> = row.iter().map(|v| format!("{v:?}")).collect();
+    for (r, row) in matrix.values.rows().into_iter().enumerate() {
+        let cells: Vec<String> = std::iter::once(r.to_string())
+            .chain(row.iter().map(|v| format!("{v:?}")))
+            .collect();
         text.push_str(&cells.join(","));
         text.push('\n');
     }
