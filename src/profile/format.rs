@@ -268,7 +268,8 @@ fn build(
     {
         return Err(bad("the feature distribution has the wrong size"));
     }
-    if rows.len() != n * d || k_distance.len() != n || density.len() != n {
+    // `fitted_rows` comes from the header unchecked: the product must not overflow.
+    if n.checked_mul(d) != Some(rows.len()) || k_distance.len() != n || density.len() != n {
         return Err(bad("the indexed rows do not match the declared shape"));
     }
     if calibration_mahalanobis.is_empty() || calibration_mahalanobis.len() != calibration_knn.len()
@@ -376,5 +377,27 @@ mod tests {
             let profile = Profile::from_bytes(&seed[1..]).unwrap();
             assert_eq!(profile.feature_names().len(), 4);
         }
+    }
+
+    /// A header whose `fitted_rows` is 2^62 (checksum recomputed, so that it reaches the
+    /// shape checks): `fitted_rows x embedded_dim` overflowed, a panic under overflow
+    /// checks; it is an inconsistent profile.
+    #[test]
+    fn a_huge_declared_row_count_is_inconsistent() {
+        let seed = &include_bytes!("../../fuzz/seeds/profile_bytes/standardize_lw_k3_as_is")[1..];
+        let header_len = u64::from_le_bytes(seed[16..24].try_into().unwrap()) as usize;
+        let header_end = PREAMBLE + header_len;
+        let mut header: serde_json::Value =
+            serde_json::from_slice(&seed[PREAMBLE..header_end]).unwrap();
+        header["fitted_rows"] = serde_json::json!(1u64 << 62);
+        let header = serde_json::to_vec(&header).unwrap();
+        let mut bytes = preamble(header.len() as u64, &header);
+        bytes.extend_from_slice(&seed[header_end..seed.len() - 4]);
+        let crc = crc32fast::hash(&bytes);
+        bytes.extend_from_slice(&crc.to_le_bytes());
+        assert!(matches!(
+            Profile::from_bytes(&bytes),
+            Err(ProfileFault::Inconsistent(_))
+        ));
     }
 }
