@@ -211,6 +211,19 @@ impl MatrixChunks {
     }
 }
 
+/// Parses the bytes of a CSV matrix file; `source` names it in errors.
+pub fn parse_csv(source: &Path, bytes: &[u8], options: &CsvOptions) -> Result<FeatureMatrix> {
+    let reader = Box::new(std::io::Cursor::new(bytes.to_vec()));
+    MatrixChunks::from_reader(MatrixFormat::Csv, reader, source, options)?.read_all()
+}
+
+/// Parses the bytes of a `.npy` matrix file; `source` names it in errors.
+pub fn parse_npy(source: &Path, bytes: &[u8]) -> Result<FeatureMatrix> {
+    let reader = Box::new(std::io::Cursor::new(bytes.to_vec()));
+    MatrixChunks::from_reader(MatrixFormat::Npy, reader, source, &CsvOptions::default())?
+        .read_all()
+}
+
 /// Reads a whole `.csv` or `.npy` matrix file, chosen by extension.
 pub fn read_matrix(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
     MatrixChunks::open(path, options)?.read_all()

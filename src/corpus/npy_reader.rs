@@ -131,16 +131,21 @@ impl NpyChunks {
 
     fn read_values(&mut self, count: usize) -> Result<Vec<f64>> {
         let size = self.header.dtype.size();
-        let mut bytes = vec![0u8; count * size];
+        // Grown as the data arrives, never sized from the header alone: a header may claim
+        // far more than the file holds.
+        let want = (count * size) as u64;
+        let mut bytes = Vec::new();
         self.source
-            .read_exact(&mut bytes)
-            .map_err(|e| match e.kind() {
-                std::io::ErrorKind::UnexpectedEof => npy_error(
-                    &self.path,
-                    "the file is shorter than its header says (truncated?)".into(),
-                ),
-                _ => Error::io(&self.path, e),
-            })?;
+            .by_ref()
+            .take(want)
+            .read_to_end(&mut bytes)
+            .map_err(|e| Error::io(&self.path, e))?;
+        if (bytes.len() as u64) < want {
+            return Err(npy_error(
+                &self.path,
+                "the file is shorter than its header says (truncated?)".into(),
+            ));
+        }
         Ok(match self.header.dtype {
             Dtype::F8 => bytes
                 .chunks_exact(8)
@@ -469,5 +474,32 @@ mod tests {
         let big = parse_header("{'descr': '>f8', 'fortran_order': False, 'shape': (3, 2), }");
         assert_eq!(big.unwrap().dtype, Dtype::BigF8);
         assert!(parse_header("garbage").is_err());
+    }
+
+    fn refusal(bytes: Vec<u8>) -> String {
+        match read_in_blocks(bytes, BLOCK_BYTES) {
+            Err(Error::Npy { detail, .. }) => detail,
+            other => panic!("expected an .npy refusal, got {other:?}"),
+        }
+    }
+
+    /// Found by the `npy_matrix` fuzz target (fuzz/regressions/npy_matrix/): a version-2
+    /// preamble whose 4-byte header length says 2.7 GB must be refused without
+    /// allocating that much.
+    #[test]
+    fn a_header_longer_than_any_matrix_header_is_refused() {
+        let input = include_bytes!("../../fuzz/regressions/npy_matrix/header_length_4gb");
+        let detail = refusal(input.to_vec());
+        assert!(detail.contains("header"), "{detail}");
+    }
+
+    /// A header declaring 2^20 x 2^20 doubles (8 TiB) over 16 bytes of data, in C and in
+    /// Fortran order: refused as truncated, the buffers grown only with the data read.
+    #[test]
+    fn a_shape_larger_than_the_data_is_refused_before_allocating() {
+        for fortran in [false, true] {
+            let bytes = npy("<f8", fortran, (1 << 20, 1 << 20), &[0u8; 16]);
+            assert!(refusal(bytes).contains("shorter than its header says"));
+        }
     }
 }

@@ -75,9 +75,13 @@ struct Request<'a> {
     gradients_for: Option<usize>,
 }
 
-struct Answer {
-    outputs: Array2<f64>,
-    gradients: Option<Array2<f64>>,
+/// A model's answer to one request.
+#[derive(Debug)]
+pub struct Answer {
+    /// One output vector per input row.
+    pub outputs: Array2<f64>,
+    /// `d score_T / d input` per input row, when asked for and given.
+    pub gradients: Option<Array2<f64>>,
 }
 
 impl LineProtocolModel {
@@ -249,6 +253,8 @@ impl LineProtocolModel {
         self.parse_answer(session, &text, rows.nrows(), rows.ncols(), gradients_for)
     }
 
+    /// Parses an answer line, then holds the session to what the model said before: a
+    /// reported error breaks it, and the number of outputs per row is fixed by the first.
     fn parse_answer(
         &self,
         session: &mut Session,
@@ -257,65 +263,26 @@ impl LineProtocolModel {
         dim: usize,
         gradients_for: Option<usize>,
     ) -> Result<Answer> {
-        let wrong = |detail: String| Error::ModelAnswer {
-            model: self.name(),
-            detail,
+        let answer = match parse_answer_line(&self.name(), text, rows, dim, gradients_for) {
+            Err(Error::ModelReported { model, message }) => {
+                session.broken = Some(Broken::Reported(message.clone()));
+                return Err(Error::ModelReported { model, message });
+            }
+            other => other?,
         };
-        let value: Value = serde_json::from_str(text.trim_end()).map_err(|e| {
-            wrong(format!(
-                "its answer is not JSON ({e}): {}",
-                abbreviate(text.trim_end(), 120)
-            ))
-        })?;
-        let object = value.as_object().ok_or_else(|| {
-            wrong(format!(
-                "its answer is not a JSON object: {}",
-                abbreviate(text.trim_end(), 120)
-            ))
-        })?;
-        if let Some(message) = object.get("error") {
-            let message = match message {
-                Value::String(s) => s.clone(),
-                other => other.to_string(),
-            };
-            session.broken = Some(Broken::Reported(message.clone()));
-            return Err(Error::ModelReported {
-                model: self.name(),
-                message,
-            });
-        }
-        let outputs = object
-            .get("outputs")
-            .ok_or_else(|| wrong("its answer has no \"outputs\" field".into()))?;
-        let outputs = number_matrix(outputs, "outputs").map_err(wrong)?;
-        check_outputs(&outputs, rows, &self.name())?;
         match session.outputs {
-            Some(c) if c != outputs.ncols() => {
-                return Err(wrong(format!(
-                    "it answered {} outputs per row, earlier {c}",
-                    outputs.ncols()
-                )))
+            Some(c) if c != answer.outputs.ncols() => {
+                return Err(Error::ModelAnswer {
+                    model: self.name(),
+                    detail: format!(
+                        "it answered {} outputs per row, earlier {c}",
+                        answer.outputs.ncols()
+                    ),
+                })
             }
-            _ => session.outputs = Some(outputs.ncols()),
+            _ => session.outputs = Some(answer.outputs.ncols()),
         }
-        let gradients = match (gradients_for, object.get("gradients")) {
-            (Some(_), Some(g)) => {
-                let g = number_matrix(g, "gradients").map_err(wrong)?;
-                if g.dim() != (rows, dim) {
-                    return Err(wrong(format!(
-                        "its gradients are {} x {}, expected {rows} x {dim}",
-                        g.nrows(),
-                        g.ncols()
-                    )));
-                }
-                if g.iter().any(|v| !v.is_finite()) {
-                    return Err(wrong("its gradients are not all finite".into()));
-                }
-                Some(g)
-            }
-            _ => None,
-        };
-        Ok(Answer { outputs, gradients })
+        Ok(answer)
     }
 
     fn run_batches(
@@ -398,6 +365,70 @@ impl Drop for LineProtocolModel {
         let _ = session.child.kill();
         let _ = session.child.wait();
     }
+}
+
+/// Parses one answer line of the protocol to a request of `rows` inputs of `dim` features.
+///
+/// An `{"error": ...}` answer is `Error::ModelReported`; anything else that is not
+/// `rows` finite output vectors of one length (plus, when `gradients_for` is set and the
+/// model gave them, `rows x dim` finite gradients) is `Error::ModelAnswer`. `model` names
+/// the model in the errors.
+pub fn parse_answer_line(
+    model: &str,
+    text: &str,
+    rows: usize,
+    dim: usize,
+    gradients_for: Option<usize>,
+) -> Result<Answer> {
+    let wrong = |detail: String| Error::ModelAnswer {
+        model: model.to_string(),
+        detail,
+    };
+    let value: Value = serde_json::from_str(text.trim_end()).map_err(|e| {
+        wrong(format!(
+            "its answer is not JSON ({e}): {}",
+            abbreviate(text.trim_end(), 120)
+        ))
+    })?;
+    let object = value.as_object().ok_or_else(|| {
+        wrong(format!(
+            "its answer is not a JSON object: {}",
+            abbreviate(text.trim_end(), 120)
+        ))
+    })?;
+    if let Some(message) = object.get("error") {
+        let message = match message {
+            Value::String(s) => s.clone(),
+            other => other.to_string(),
+        };
+        return Err(Error::ModelReported {
+            model: model.to_string(),
+            message,
+        });
+    }
+    let outputs = object
+        .get("outputs")
+        .ok_or_else(|| wrong("its answer has no \"outputs\" field".into()))?;
+    let outputs = number_matrix(outputs, "outputs").map_err(wrong)?;
+    check_outputs(&outputs, rows, model)?;
+    let gradients = match (gradients_for, object.get("gradients")) {
+        (Some(_), Some(g)) => {
+            let g = number_matrix(g, "gradients").map_err(wrong)?;
+            if g.dim() != (rows, dim) {
+                return Err(wrong(format!(
+                    "its gradients are {} x {}, expected {rows} x {dim}",
+                    g.nrows(),
+                    g.ncols()
+                )));
+            }
+            if g.iter().any(|v| !v.is_finite()) {
+                return Err(wrong("its gradients are not all finite".into()));
+            }
+            Some(g)
+        }
+        _ => None,
+    };
+    Ok(Answer { outputs, gradients })
 }
 
 /// Waits up to `limit` for the child to exit; whether it did.

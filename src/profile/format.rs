@@ -284,9 +284,11 @@ fn read_profile(
         .into());
     }
     let header_len = u64::from_le_bytes(preamble[16..24].try_into().expect("8 bytes"));
+    // `length >= PREAMBLE + 4` here; `end + 4` could overflow for a header length near
+    // the largest integer, `length - 4` cannot.
     let header_end = header_len
         .checked_add(PREAMBLE as u64)
-        .filter(|&end| end + 4 <= length)
+        .filter(|&end| end <= length - 4)
         .ok_or(ProfileFault::Truncated)?;
     let mut header_bytes = vec![0u8; (header_end - PREAMBLE as u64) as usize];
     read_exact(&mut source, &mut header_bytes)?;
@@ -422,7 +424,8 @@ fn build(
     {
         return Err(bad("the feature distribution has the wrong size"));
     }
-    if rows.len() != n * d || k_distance.len() != n || density.len() != n {
+    // `fitted_rows` comes from the header unchecked: the product must not overflow.
+    if n.checked_mul(d) != Some(rows.len()) || k_distance.len() != n || density.len() != n {
         return Err(bad("the indexed rows do not match the declared shape"));
     }
     if calibration_mahalanobis.is_empty() || calibration_mahalanobis.len() != calibration_knn.len()
@@ -500,4 +503,77 @@ fn build(
         calibration_knn: CalibrationScores::new(calibration_knn),
         features,
     })
+}
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A preamble in this file's layout (signature, version, header length) over `rest`.
+    fn preamble(header_len: u64, rest: &[u8]) -> Vec<u8> {
+        let mut out = SIGNATURE.to_vec();
+        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+        out.extend_from_slice(&header_len.to_le_bytes());
+        out.extend_from_slice(rest);
+        out
+    }
+
+    /// Found by the `profile_bytes` fuzz target (fuzz/regressions/profile_bytes/; its
+    /// first byte is the target's mode): a header length of 2^64 - 25 passed the bounds
+    /// check by overflowing `end + 4`, and slicing the header then panicked.
+    #[test]
+    fn a_header_length_near_the_largest_integer_is_truncation() {
+        // Written under format version 2; the version is brought up to date so that the
+        // header length is what is tested.
+        let mut input =
+            include_bytes!("../../fuzz/regressions/profile_bytes/header_length_overflow")[1..]
+                .to_vec();
+        input[12..16].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
+        assert!(matches!(
+            Profile::from_bytes(&input),
+            Err(ProfileFault::Truncated)
+        ));
+        for header_len in [u64::MAX, u64::MAX - 24, u64::MAX - 25, u64::MAX - 27] {
+            let bytes = preamble(header_len, &[b'{'; 64]);
+            assert!(
+                matches!(Profile::from_bytes(&bytes), Err(ProfileFault::Truncated)),
+                "header length {header_len}"
+            );
+        }
+    }
+
+    /// The seed profiles of the fuzz target (fitted by `kilter fit` on iris rows, see
+    /// fuzz/make_seeds.py) must load: a seed this format refuses would leave the fuzzer
+    /// stuck at the signature or the checksum. The first byte is the target's mode.
+    #[test]
+    fn the_fuzz_seed_profiles_load() {
+        for seed in [
+            &include_bytes!("../../fuzz/seeds/profile_bytes/standardize_lw_k3_as_is")[..],
+            &include_bytes!("../../fuzz/seeds/profile_bytes/pca2_empirical_k2_in_sample_as_is")[..],
+        ] {
+            let profile = Profile::from_bytes(&seed[1..]).unwrap();
+            assert_eq!(profile.feature_names().len(), 4);
+        }
+    }
+
+    /// A header whose `fitted_rows` is 2^62 (checksum recomputed, so that it reaches the
+    /// shape checks): `fitted_rows x embedded_dim` overflowed, a panic under overflow
+    /// checks; it is an inconsistent profile.
+    #[test]
+    fn a_huge_declared_row_count_is_inconsistent() {
+        let seed = &include_bytes!("../../fuzz/seeds/profile_bytes/standardize_lw_k3_as_is")[1..];
+        let header_len = u64::from_le_bytes(seed[16..24].try_into().unwrap()) as usize;
+        let header_end = PREAMBLE + header_len;
+        let mut header: serde_json::Value =
+            serde_json::from_slice(&seed[PREAMBLE..header_end]).unwrap();
+        header["fitted_rows"] = serde_json::json!(1u64 << 62);
+        let header = serde_json::to_vec(&header).unwrap();
+        let mut bytes = preamble(header.len() as u64, &header);
+        bytes.extend_from_slice(&seed[header_end..seed.len() - 4]);
+        let crc = crc32fast::hash(&bytes);
+        bytes.extend_from_slice(&crc.to_le_bytes());
+        assert!(matches!(
+            Profile::from_bytes(&bytes),
+            Err(ProfileFault::Inconsistent(_))
+        ));
+    }
 }
