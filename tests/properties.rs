@@ -287,8 +287,8 @@ proptest! {
         let settings = ProfileSettings { holdout, seed, k: 5, ..ProfileSettings::default() };
         let profile = settings.fit(&iris).unwrap();
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        let location = profile.feature_distribution().location().clone();
-        let scale = profile.feature_distribution().scale().clone();
+        let location = profile.feature_distribution().unwrap().location().clone();
+        let scale = profile.feature_distribution().unwrap().scale().clone();
         let queries = Array2::from_shape_fn((30, 4), |(_, j)| {
             location[j] + spread * scale[j] * rand::Rng::random_range(&mut rng, -2.0..2.0)
         });
@@ -603,8 +603,8 @@ proptest! {
         let settings = ProfileSettings { k: 5, ..ProfileSettings::default() };
         let profile = settings.fit(&wine).unwrap();
         let profile_p = settings.fit(&wine_p).unwrap();
-        let mean = profile.feature_distribution().location().clone();
-        let mean_p = profile_p.feature_distribution().location().clone();
+        let mean = profile.feature_distribution().unwrap().location().clone();
+        let mean_p = profile_p.feature_distribution().unwrap().location().clone();
         prop_assert!(relative_gap(
             mean_p.as_slice().unwrap(), permuted(mean.view(), &perm).as_slice().unwrap(), 1.0,
         ) < 1e-15);
@@ -697,9 +697,9 @@ proptest! {
         // draws are not comparable one by one: the standard normal draws are assigned to
         // the masked features in their new order.
         let cg = ConditionalGaussian::new(mean.clone(),
-            profile.feature_distribution().covariance().clone(), 2);
+            profile.feature_distribution().unwrap().covariance().clone(), 2);
         let cg_p = ConditionalGaussian::new(mean_p.clone(),
-            profile_p.feature_distribution().covariance().clone(), 2);
+            profile_p.feature_distribution().unwrap().covariance().clone(), 2);
         let kept: Vec<bool> = (0..d).map(|i| labels[i] % 2 == 0 && i != perm[0]).collect();
         let kept_p: Vec<bool> = perm.iter().map(|&p| kept[p]).collect();
         let (m, c) = cg.conditional_moments(input.view(), &kept).unwrap();

@@ -95,6 +95,9 @@ impl MatrixFormat {
     }
 }
 
+/// Values `read_all` reserves before any row has been read (16 MB).
+const PREALLOCATED_VALUES: usize = 1 << 21;
+
 enum Reader {
     Csv(CsvChunks),
     Npy(NpyChunks),
@@ -197,7 +200,10 @@ impl MatrixChunks {
     /// Reads every remaining row into one matrix.
     pub fn read_all(mut self) -> Result<FeatureMatrix> {
         let columns = self.names.len();
-        let mut values = Vec::with_capacity(self.rows_hint().unwrap_or(0) * columns);
+        // A header's row count is only a claim until the rows arrive: reserve for at most
+        // one block's worth up front and let the buffer grow with what is read.
+        let claimed = self.rows_hint().unwrap_or(0).saturating_mul(columns);
+        let mut values = Vec::with_capacity(claimed.min(PREALLOCATED_VALUES));
         while let Some(chunk) = self.next_chunk()? {
             values.extend(chunk.iter());
         }
@@ -220,11 +226,27 @@ pub fn parse_csv(source: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Fe
 /// Parses the bytes of a `.npy` matrix file; `source` names it in errors.
 pub fn parse_npy(source: &Path, bytes: &[u8]) -> Result<FeatureMatrix> {
     let reader = Box::new(std::io::Cursor::new(bytes.to_vec()));
-    MatrixChunks::from_reader(MatrixFormat::Npy, reader, source, &CsvOptions::default())?
-        .read_all()
+    MatrixChunks::from_reader(MatrixFormat::Npy, reader, source, &CsvOptions::default())?.read_all()
 }
 
 /// Reads a whole `.csv` or `.npy` matrix file, chosen by extension.
 pub fn read_matrix(path: &Path, options: &CsvOptions) -> Result<FeatureMatrix> {
     MatrixChunks::open(path, options)?.read_all()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Found by the `npy_matrix` fuzz target (fuzz/regressions/npy_matrix/): a header
+    /// claiming 4,294,967,296 x 429,496,762 float32 values over a few bytes of data made
+    /// the reader reserve room for all of them and run out of memory. It is refused.
+    #[test]
+    fn a_claimed_shape_reserves_nothing_before_the_rows_arrive() {
+        let input = include_bytes!("../../fuzz/regressions/npy_matrix/declared_shape_4g_rows");
+        match parse_npy(Path::new("x.npy"), input) {
+            Err(Error::Npy { detail, .. }) => assert!(detail.contains("columns"), "{detail}"),
+            other => panic!("expected truncation, got {other:?}"),
+        }
+    }
 }

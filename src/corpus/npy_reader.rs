@@ -14,6 +14,8 @@ use crate::error::{CellFault, ColumnRef, Error, Result};
 /// Bytes of data read per chunk.
 const BLOCK_BYTES: usize = 16 << 20;
 const MAGIC: &[u8] = b"\x93NUMPY";
+/// More features than any model kilter audits takes; a header claiming more is damaged.
+const MAX_COLUMNS: usize = 1 << 24;
 
 type Source = Box<dyn Read + Send>;
 
@@ -135,11 +137,18 @@ impl NpyChunks {
         // far more than the file holds.
         let want = (count * size) as u64;
         let mut bytes = Vec::new();
-        self.source
-            .by_ref()
-            .take(want)
-            .read_to_end(&mut bytes)
-            .map_err(|e| Error::io(&self.path, e))?;
+        let mut piece = vec![0u8; 1 << 20];
+        while (bytes.len() as u64) < want {
+            let step = (want - bytes.len() as u64).min(piece.len() as u64) as usize;
+            let read = self
+                .source
+                .read(&mut piece[..step])
+                .map_err(|e| Error::io(&self.path, e))?;
+            if read == 0 {
+                break;
+            }
+            bytes.extend_from_slice(&piece[..read]);
+        }
         if (bytes.len() as u64) < want {
             return Err(npy_error(
                 &self.path,
@@ -295,6 +304,11 @@ fn parse_header(text: &str) -> std::result::Result<Header, String> {
     };
     if columns == 0 {
         return Err("the array has no columns".into());
+    }
+    if columns > MAX_COLUMNS {
+        return Err(format!(
+            "the header claims {columns} columns; kilter reads at most {MAX_COLUMNS} features"
+        ));
     }
     if rows
         .checked_mul(columns)
