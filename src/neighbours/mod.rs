@@ -82,17 +82,21 @@ pub trait NeighbourIndex: Send + Sync {
 /// (recall at k). Queries are paired by row; an exact row's indices are looked up in the
 /// approximate row of the same query, whatever its width. No queries give 1.
 pub fn recall(exact: &Neighbours, approximate: &Neighbours) -> f64 {
-    let queries = exact.indices.nrows().min(approximate.indices.nrows());
-    if queries == 0 || exact.k() == 0 {
+    recall_of_indices(exact.indices.view(), approximate.indices.view())
+}
+
+/// [`recall`] on the neighbour indices alone (`queries x k` each).
+pub fn recall_of_indices(exact: ArrayView2<'_, usize>, approximate: ArrayView2<'_, usize>) -> f64 {
+    let queries = exact.nrows().min(approximate.nrows());
+    if queries == 0 || exact.ncols() == 0 {
         return 1.0;
     }
     let found: usize = exact
-        .indices
         .outer_iter()
-        .zip(approximate.indices.outer_iter())
+        .zip(approximate.outer_iter())
         .map(|(want, got)| want.iter().filter(|i| got.iter().any(|g| g == *i)).count())
         .sum();
-    found as f64 / (queries * exact.k()) as f64
+    found as f64 / (queries * exact.ncols()) as f64
 }
 
 /// The refusals every index makes before searching: `k` out of range, queries of the wrong

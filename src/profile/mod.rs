@@ -21,7 +21,7 @@ use crate::corpus::{FeatureMatrix, MatrixHeader};
 use crate::embedding::{column_mean_and_sd, Embedding, EmbeddingSpec, FittedEmbedding};
 use crate::error::{Error, Result};
 use crate::neighbours::{
-    recall, BruteForceIndex, Exclusion, IndexChoice, LocalOutlierFactor, NeighbourIndex,
+    recall_of_indices, BruteForceIndex, Exclusion, IndexChoice, LocalOutlierFactor, NeighbourIndex,
     ReferenceIndex,
 };
 use crate::stats::{
@@ -89,19 +89,17 @@ fn measured_recall(
                     truth[[q, j]] = i;
                 }
             }
-            let answer = found.indices.slice(ndarray::s![..take, ..]).to_owned();
-            (truth, answer)
+            (
+                truth,
+                found.indices.slice(ndarray::s![..take, ..]).to_owned(),
+            )
         }
         None => (
             exact.k_nearest(sample, k, Exclusion::None)?.indices,
             index.k_nearest(sample, k, Exclusion::None)?.indices,
         ),
     };
-    let as_neighbours = |indices: ndarray::Array2<usize>| crate::neighbours::Neighbours {
-        distances: ndarray::Array2::zeros(indices.dim()),
-        indices,
-    };
-    Ok(Some(recall(&as_neighbours(truth), &as_neighbours(answer))))
+    Ok(Some(recall_of_indices(truth.view(), answer.view())))
 }
 
 /// A fitted reference profile.
