@@ -1,7 +1,10 @@
 //! Fuzz target: the CSV matrix reader on arbitrary bytes.
 //!
-//! The first byte picks the options (no dropped columns, or an `id` and a `label` column
-//! dropped); the rest is the file. The reader must never panic, and a matrix it accepts
+//! The first byte picks the options (bit 0: no dropped columns, or an `id` and a `label`
+//! column dropped) and a tiny block size (bits 1-7: 1 to 128 bytes); the rest is the file.
+//! The file is read twice, with the everyday block size and with the tiny one, which puts
+//! rows, cells and quotes on block edges: both reads must give the same matrix, bit for
+//! bit, or the same error message. The reader must never panic, and a matrix it accepts
 //! must be well formed: at least one row and one column, unique non-empty names none of
 //! which was dropped, every value finite. An accepted matrix is also written back as a
 //! fully quoted CSV and read again, which must give the same names and the same values
@@ -15,8 +18,12 @@
 
 use std::path::Path;
 
-use kilter::corpus::{parse_csv, CsvOptions, FeatureMatrix};
+use kilter::corpus::{parse_csv, parse_in_blocks, CsvOptions, FeatureMatrix, MatrixFormat};
 use libfuzzer_sys::fuzz_target;
+
+#[path = "../shared/same_outcome.rs"]
+mod same_outcome;
+use same_outcome::assert_same_outcome;
 
 fuzz_target!(|data: &[u8]| {
     let Some((&mode, bytes)) = data.split_first() else {
@@ -31,7 +38,11 @@ fuzz_target!(|data: &[u8]| {
         CsvOptions::default()
     };
     let source = Path::new("fuzz.csv");
-    let Ok(matrix) = parse_csv(source, bytes, &options) else {
+    let block = 1 + usize::from(mode >> 1);
+    let everyday = parse_csv(source, bytes, &options);
+    let tiny = parse_in_blocks(MatrixFormat::Csv, source, bytes, &options, block);
+    assert_same_outcome(&everyday, &tiny, block);
+    let Ok(matrix) = everyday else {
         return;
     };
     check_well_formed(&matrix, &options);

@@ -41,9 +41,20 @@ fuzz_target!(|data: &[u8]| {
         profile.index().rows().dim(),
         (profile.fitted_rows(), profile.embedded_dim())
     );
-    assert_eq!(profile.feature_distribution().expect("a complete profile").location().len(), p);
+    assert_eq!(
+        profile
+            .feature_distribution()
+            .expect("a complete profile")
+            .location()
+            .len(),
+        p
+    );
 
-    let location = profile.feature_distribution().expect("a complete profile").location().to_vec();
+    let location = profile
+        .feature_distribution()
+        .expect("a complete profile")
+        .location()
+        .to_vec();
     let row = Array2::from_shape_vec((1, p), location).expect("one row of p features");
     if let Ok(records) = profile.score(row.view(), 0, 0.01) {
         assert_eq!(records.len(), 1);

@@ -65,6 +65,11 @@ enum Mode {
 }
 
 impl CsvChunks {
+    /// See [`super::MatrixChunks::with_block_bytes`].
+    pub(super) fn set_block_bytes(&mut self, bytes: usize) {
+        self.block_bytes = bytes;
+    }
+
     /// Reads the header; the rows come with [`CsvChunks::next_chunk`].
     pub(super) fn new(path: &Path, mut source: Source, options: &CsvOptions) -> Result<Self> {
         let mut pending = Vec::new();

@@ -145,6 +145,20 @@ impl MatrixChunks {
         })
     }
 
+    /// Reads the remaining rows in blocks of about `bytes` bytes instead of the default
+    /// 16 MB. The block size changes only where the input is cut, never what is read;
+    /// tiny blocks put every row and cell on a block edge, which is how the fuzz targets
+    /// check the edges (`fuzz/`). Not for everyday use: small blocks are slow.
+    #[doc(hidden)]
+    pub fn with_block_bytes(mut self, bytes: usize) -> Self {
+        let bytes = bytes.max(1);
+        match &mut self.reader {
+            Reader::Csv(csv) => csv.set_block_bytes(bytes),
+            Reader::Npy(npy) => npy.set_block_bytes(bytes),
+        }
+        self
+    }
+
     /// The names and origin of the columns.
     pub fn header(&self) -> MatrixHeader<'_> {
         MatrixHeader {
@@ -227,6 +241,23 @@ pub fn parse_csv(source: &Path, bytes: &[u8], options: &CsvOptions) -> Result<Fe
 pub fn parse_npy(source: &Path, bytes: &[u8]) -> Result<FeatureMatrix> {
     let reader = Box::new(std::io::Cursor::new(bytes.to_vec()));
     MatrixChunks::from_reader(MatrixFormat::Npy, reader, source, &CsvOptions::default())?.read_all()
+}
+
+/// [`parse_csv`] or [`parse_npy`] with the data read in blocks of `block_bytes` bytes (see
+/// [`MatrixChunks::with_block_bytes`]); for the fuzz targets, which check that the block
+/// size never changes the result.
+#[doc(hidden)]
+pub fn parse_in_blocks(
+    format: MatrixFormat,
+    source: &Path,
+    bytes: &[u8],
+    options: &CsvOptions,
+    block_bytes: usize,
+) -> Result<FeatureMatrix> {
+    let reader = Box::new(std::io::Cursor::new(bytes.to_vec()));
+    MatrixChunks::from_reader(format, reader, source, options)?
+        .with_block_bytes(block_bytes)
+        .read_all()
 }
 
 /// Reads a whole `.csv` or `.npy` matrix file, chosen by extension.

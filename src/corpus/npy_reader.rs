@@ -58,6 +58,11 @@ pub(super) struct NpyChunks {
 }
 
 impl NpyChunks {
+    /// See [`super::MatrixChunks::with_block_bytes`].
+    pub(super) fn set_block_bytes(&mut self, bytes: usize) {
+        self.block_bytes = bytes;
+    }
+
     /// Reads and checks the header; the rows come with [`NpyChunks::next_chunk`].
     pub(super) fn new(path: &Path, mut source: Source) -> Result<Self> {
         let header = read_header(path, &mut source)?;
@@ -71,7 +76,11 @@ impl NpyChunks {
         };
         if chunks.header.fortran_order {
             let (rows, columns) = (chunks.header.rows, chunks.header.columns);
-            let by_column = chunks.read_values(rows * columns)?;
+            // Whole-file reading is the same for every block size, so file order is moot.
+            let (by_column, complete) = chunks.read_values(rows * columns)?;
+            if !complete {
+                return Err(truncated(path));
+            }
             chunks.check_end()?;
             let mut by_row = vec![0.0; rows * columns];
             for c in 0..columns {
@@ -105,12 +114,20 @@ impl NpyChunks {
         let values = match self.whole.take() {
             Some(all) => {
                 self.rows_done = rows;
+                check_finite(&self.path, &all, 0, columns)?;
                 all
             }
             None => {
                 let per_block = (self.block_bytes / (columns * self.header.dtype.size())).max(1);
                 let take = per_block.min(rows - self.rows_done);
-                let values = self.read_values(take * columns)?;
+                let (values, complete) = self.read_values(take * columns)?;
+                // Faults are reported in file order, whatever the block size: a bad cell
+                // before the point where the file ends early, or before bytes left over
+                // after the data, is reported first.
+                check_finite(&self.path, &values, self.rows_done, columns)?;
+                if !complete {
+                    return Err(truncated(&self.path));
+                }
                 self.rows_done += take;
                 if self.rows_done == rows {
                     self.check_end()?;
@@ -118,20 +135,12 @@ impl NpyChunks {
                 values
             }
         };
-        let first_row = self.rows_done - values.len() / columns;
-        // Row-major scan so that the first bad cell reported is the first a person meets.
-        if let Some(at) = values.iter().position(|v| !v.is_finite()) {
-            return Err(Error::BadCell {
-                path: self.path.clone(),
-                row: first_row + at / columns + 1,
-                column: ColumnRef::Position(at % columns + 1),
-                fault: CellFault::NotFinite(values[at].to_string()),
-            });
-        }
         Ok(Some(values))
     }
 
-    fn read_values(&mut self, count: usize) -> Result<Vec<f64>> {
+    /// Reads up to `count` values; also says whether all of them were there (`false`: the
+    /// file ended first, and only the whole values before its end are returned).
+    fn read_values(&mut self, count: usize) -> Result<(Vec<f64>, bool)> {
         let size = self.header.dtype.size();
         // Grown as the data arrives, never sized from the header alone: a header may claim
         // far more than the file holds.
@@ -149,13 +158,8 @@ impl NpyChunks {
             }
             bytes.extend_from_slice(&piece[..read]);
         }
-        if (bytes.len() as u64) < want {
-            return Err(npy_error(
-                &self.path,
-                "the file is shorter than its header says (truncated?)".into(),
-            ));
-        }
-        Ok(match self.header.dtype {
+        let complete = bytes.len() as u64 == want;
+        let values = match self.header.dtype {
             Dtype::F8 => bytes
                 .chunks_exact(8)
                 .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")))
@@ -172,7 +176,8 @@ impl NpyChunks {
                 .chunks_exact(4)
                 .map(|b| f64::from(f32::from_be_bytes(b.try_into().expect("4 bytes"))))
                 .collect(),
-        })
+        };
+        Ok((values, complete))
     }
 
     /// After the last value the file must end.
@@ -199,6 +204,27 @@ impl NpyChunks {
                 ),
             ))
         }
+    }
+}
+
+fn truncated(path: &Path) -> Error {
+    npy_error(
+        path,
+        "the file is shorter than its header says (truncated?)".into(),
+    )
+}
+
+/// Refuses the first value that is NaN or infinite, scanning row by row so that the cell
+/// reported is the first a person meets; `first_row` is the 0-based row of `values[0]`.
+fn check_finite(path: &Path, values: &[f64], first_row: usize, columns: usize) -> Result<()> {
+    match values.iter().position(|v| !v.is_finite()) {
+        Some(at) => Err(Error::BadCell {
+            path: path.to_path_buf(),
+            row: first_row + at / columns + 1,
+            column: ColumnRef::Position(at % columns + 1),
+            fault: CellFault::NotFinite(values[at].to_string()),
+        }),
+        None => Ok(()),
     }
 }
 
@@ -514,6 +540,54 @@ mod tests {
         for fortran in [false, true] {
             let bytes = npy("<f8", fortran, (1 << 20, 1 << 20), &[0u8; 16]);
             assert!(refusal(bytes).contains("shorter than its header says"));
+        }
+    }
+
+    /// Found by the `npy_matrix` fuzz target when it began reading every input in tiny
+    /// blocks as well (fuzz/regressions/npy_matrix/nan_then_truncated): a (30, 4) array
+    /// whose data holds a NaN in row 6 and then ends early was refused as truncated when
+    /// read in one block and for its NaN when read in small ones. Faults now come in file
+    /// order whatever the block: the NaN, and for a clean truncated file the truncation.
+    #[test]
+    fn faults_are_reported_in_file_order_whatever_the_block() {
+        let input = include_bytes!("../../fuzz/regressions/npy_matrix/nan_then_truncated");
+        for block in [1, 7, 32, 60, BLOCK_BYTES] {
+            let err = read_in_blocks(input.to_vec(), block)
+                .unwrap_err()
+                .to_string();
+            assert!(
+                err.contains("row 6, column 4") && err.contains("NaN"),
+                "{block}: {err}"
+            );
+        }
+        let values: Vec<u8> = (0..10).flat_map(|v| f64::from(v).to_le_bytes()).collect();
+        let clean_truncated = npy("<f8", false, (4, 3), &values);
+        let extra = npy(
+            "<f8",
+            false,
+            (3, 3),
+            &[values.as_slice(), &[0u8; 9]].concat(),
+        );
+        let mut nan_then_extra = values[..72].to_vec();
+        nan_then_extra[8..16].copy_from_slice(&f64::NAN.to_le_bytes());
+        nan_then_extra.extend_from_slice(&[0u8; 5]);
+        let nan_then_extra = npy("<f8", false, (3, 3), &nan_then_extra);
+        for block in [1, 8, 24, BLOCK_BYTES] {
+            let err = read_in_blocks(clean_truncated.clone(), block)
+                .unwrap_err()
+                .to_string();
+            assert!(
+                err.contains("shorter than its header says"),
+                "{block}: {err}"
+            );
+            let err = read_in_blocks(extra.clone(), block)
+                .unwrap_err()
+                .to_string();
+            assert!(err.contains("bytes after the array data"), "{block}: {err}");
+            let err = read_in_blocks(nan_then_extra.clone(), block)
+                .unwrap_err()
+                .to_string();
+            assert!(err.contains("row 1, column 2"), "{block}: {err}");
         }
     }
 }

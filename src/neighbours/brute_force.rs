@@ -1,15 +1,22 @@
 //! Exact brute-force k-nearest-neighbour search at matrix-multiply speed.
 //!
-//! Distances to a tile of indexed rows come from one single-precision matrix product,
-//! `‖q - r‖² = ‖q‖² + ‖r‖² - 2 q·r`, on rows centred at the index's mean (centring leaves
-//! distances unchanged and keeps the norms, and so the cancellation, small). That pass
-//! only nominates candidates: each query keeps a few more than `k`, their distances are
-//! recomputed exactly in double precision as sums of squared differences, and a query
-//! whose margin cannot rule out a missed neighbour under a worst-case bound on the
+//! Squared distances to a tile of indexed rows come from one single-precision matrix
+//! product, `‖q - r‖² = ‖q‖² + ‖r‖² - 2 q·r`, with the norms folded into the product as two
+//! extra coordinates (`[q, ‖q‖², 1] · [-2r, 1, ‖r‖²]`), so the product is already the
+//! distance and nothing is added afterwards. Rows are centred at the index's mean first
+//! (centring leaves distances unchanged and keeps the norms, and so the cancellation, small).
+//! The product runs in the `gemm` crate's blocked kernels (AVX-512 where the processor has
+//! it, chosen at run time), one query block per thread; the indexed rows are stored tile by
+//! tile, already transposed, in the layout those kernels read fastest.
+//!
+//! That pass only nominates candidates: each query keeps a few more than `k`, their
+//! distances are recomputed exactly in double precision as sums of squared differences, and
+//! a query whose margin cannot rule out a missed neighbour under a worst-case bound on the
 //! single-precision error is searched again exhaustively in double precision. The answer
 //! is therefore exact, not approximate; the fast pass only decides where to look.
 
-use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+use rayon::prelude::*;
 
 use super::{
     check_request, exact_squared_distance, exhaustive, nearest_first, search_in_blocks, Candidates,
@@ -17,12 +24,15 @@ use super::{
 };
 use crate::error::Result;
 
-/// Indexed rows per matrix-product tile: a 256 x 1024 f32 tile of products is 1 MiB.
-const ROW_TILE: usize = 1024;
+/// Indexed rows per matrix-product tile: a 256 x 256 f32 tile of products is 256 KiB, which
+/// stays in a core's second-level cache between the product writing it and the scan reading
+/// it (measured on W1 of `benches/peer.py`: 1,024-row tiles cost a fifth more CPU time,
+/// 128-row tiles no less).
+const ROW_TILE: usize = 256;
 /// Extra candidates kept per query beyond k for the exact re-ranking.
 const EXTRA_CANDIDATES: usize = 8;
-/// Width of the blocks in which the candidate scan first checks a block minimum.
-const SCAN_LANES: usize = 16;
+/// Entries per block of the candidate scan: one bit each in a `u32` mask.
+const SCAN_LANES: usize = 32;
 /// Beyond this magnitude a centred coordinate's square could overflow single precision;
 /// such data is searched in double precision throughout.
 const SINGLE_PRECISION_LIMIT: f64 = 1e15;
@@ -32,10 +42,10 @@ const SINGLE_PRECISION_LIMIT: f64 = 1e15;
 pub struct BruteForceIndex {
     rows: Array2<f64>,
     center: Array1<f64>,
-    /// `rows - center` in single precision, for the candidate pass.
-    centred: Array2<f32>,
-    /// `‖rows - center‖²` of the single-precision rows.
-    centred_norms: Array1<f32>,
+    /// The candidate pass's right-hand operand, tile after tile: for the tile of rows
+    /// `t·ROW_TILE..`, a `(dim + 2) x tile_len` row-major block whose column `j` is
+    /// `[-2 (r_j - center), 1, ‖r_j - center‖²]` in single precision.
+    tiles: Vec<f32>,
     max_centred_norm: f64,
     single_precision: bool,
 }
@@ -44,56 +54,137 @@ impl BruteForceIndex {
     /// Indexes the rows (copied into standard layout).
     pub fn new(rows: Array2<f64>) -> Self {
         // No copy of a million-row matrix that is already in standard layout, and no
-        // double-precision centred copy: the single-precision one is made row by row.
+        // double-precision centred copy: the single-precision tiles are filled row by row.
         let rows = if rows.is_standard_layout() {
             rows
         } else {
             rows.as_standard_layout().into_owned()
         };
-        let center = rows
-            .mean_axis(Axis(0))
-            .unwrap_or_else(|| Array1::zeros(rows.ncols()));
-        let mut centred = Array2::<f32>::zeros(rows.dim());
-        let mut largest = 0.0_f64;
-        for (mut out, row) in centred.outer_iter_mut().zip(rows.outer_iter()) {
-            for ((o, &v), &c) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
-                let t = v - c;
-                largest = largest.max(t.abs());
-                *o = t as f32;
-            }
-        }
-        let single_precision = largest < SINGLE_PRECISION_LIMIT;
-        let centred_norms = Array1::from_iter(
-            centred
-                .outer_iter()
-                .map(|r| r.iter().map(|&v| f64::from(v) * f64::from(v)).sum::<f64>() as f32),
-        );
-        let max_centred_norm = centred_norms
-            .iter()
-            .fold(0.0_f64, |m, &v| m.max(f64::from(v)));
+        let (n, d) = rows.dim();
+        let center = rows.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d));
+        let width = d + 2;
+        let mut tiles = vec![0.0_f32; width * n];
+        // Tiles are independent: filled in parallel, each reporting its largest centred
+        // magnitude and norm.
+        let (largest, max_centred_norm) = tiles
+            .par_chunks_mut(ROW_TILE * width)
+            .zip(rows.axis_chunks_iter(Axis(0), ROW_TILE).into_par_iter())
+            .map(|(block, tile_rows)| fill_tile(block, tile_rows, center.view()))
+            .reduce(|| (0.0, 0.0), |a, b| (a.0.max(b.0), a.1.max(b.1)));
         BruteForceIndex {
             rows,
             center,
-            centred,
-            centred_norms,
+            tiles,
             max_centred_norm,
-            single_precision,
+            single_precision: largest < SINGLE_PRECISION_LIMIT,
         }
     }
 
-    /// Worst-case error of one single-precision `‖q‖² + ‖r‖² - 2 q·r` over `d`
-    /// coordinates: rounding the inputs and accumulating `d` products costs at most about
-    /// `(d + 4)` units of 2⁻²⁴ relative to `‖q‖² + ‖r‖²` (Higham, "Accuracy and Stability of
-    /// Numerical Algorithms", 2nd ed., §3.1, for the inner product); doubled for margin.
+    /// Worst-case error of one single-precision distance `[q, ‖q‖², 1] · [-2r, 1, ‖r‖²]`:
+    /// accumulating its `d + 2` products costs at most about `(d + 2)` units of 2⁻²⁴ times
+    /// the sum of their magnitudes, itself at most `2 (‖q‖² + ‖r‖²)` (Higham, "Accuracy and
+    /// Stability of Numerical Algorithms", 2nd ed., §3.1, for the inner product), and
+    /// rounding the coordinates to single precision moves the distance by at most about
+    /// four more such units. That is `(d + 4) ε (‖q‖² + ‖r‖²)` with ε = 2⁻²³; doubled for
+    /// margin.
     fn single_precision_error(&self, query_norm: f64) -> f64 {
         let d = self.rows.ncols() as f64;
-        2.0 * (d + 4.0) * f64::from(f32::EPSILON) * 0.5 * (query_norm + self.max_centred_norm)
+        2.0 * (d + 4.0) * f64::from(f32::EPSILON) * (query_norm + self.max_centred_norm)
+    }
+
+    /// The operand block of the tile starting at row `tile_start`, and its length.
+    fn tile(&self, tile_start: usize) -> (&[f32], usize) {
+        let width = self.rows.ncols() + 2;
+        let len = ROW_TILE.min(self.rows.nrows() - tile_start);
+        (&self.tiles[tile_start * width..][..len * width], len)
+    }
+}
+
+/// Rows transposed per block of this many, so that both the reads and the writes of the
+/// transposition touch whole cache lines.
+const TRANSPOSE_BLOCK: usize = 16;
+
+/// Fills one tile's operand block (see [`BruteForceIndex::tiles`]) from its rows. Returns
+/// the largest centred magnitude and the largest centred norm among them.
+fn fill_tile(
+    block: &mut [f32],
+    rows: ArrayView2<'_, f64>,
+    center: ArrayView1<'_, f64>,
+) -> (f64, f64) {
+    let (len, d) = rows.dim();
+    let mut largest = 0.0_f64;
+    let mut max_norm = 0.0_f64;
+    let mut centred = vec![0.0_f32; TRANSPOSE_BLOCK * d];
+    for first in (0..len).step_by(TRANSPOSE_BLOCK) {
+        let count = TRANSPOSE_BLOCK.min(len - first);
+        for j in 0..count {
+            let row = rows.row(first + j);
+            let out = &mut centred[j * d..(j + 1) * d];
+            // The norm is that of the rounded coordinates, the vector the product sees.
+            let mut norm = 0.0_f64;
+            for ((o, &v), &m) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
+                let t = v - m;
+                largest = largest.max(t.abs());
+                *o = t as f32;
+                norm += f64::from(*o) * f64::from(*o);
+            }
+            block[d * len + first + j] = 1.0;
+            block[(d + 1) * len + first + j] = norm as f32;
+            max_norm = max_norm.max(norm);
+        }
+        for c in 0..d {
+            let column = &mut block[c * len + first..][..count];
+            for (j, slot) in column.iter_mut().enumerate() {
+                *slot = -2.0 * centred[j * d + c];
+            }
+        }
+    }
+    (largest, max_norm)
+}
+
+/// `out = lhs · rhs` in single precision on the calling thread, all three row-major:
+/// `lhs` is `m x k`, `rhs` is `k x n`, `out` is `m x n`.
+fn product(out: &mut [f32], lhs: &[f32], rhs: &[f32], m: usize, n: usize, k: usize) {
+    assert!(
+        lhs.len() == m * k && rhs.len() == k * n && out.len() == m * n,
+        "operand sizes must match the product's shape"
+    );
+    if m == 0 || n == 0 {
+        return;
+    }
+    // SAFETY: the three slices hold exactly the m x k, k x n and m x n row-major matrices
+    // described by the strides passed (checked above), `out` does not alias the operands
+    // (it is borrowed mutably), and read_dst = false means `out`'s old contents are not read.
+    unsafe {
+        gemm::gemm(
+            m,
+            n,
+            k,
+            out.as_mut_ptr(),
+            1,
+            n as isize,
+            false,
+            lhs.as_ptr(),
+            1,
+            k as isize,
+            rhs.as_ptr(),
+            1,
+            n as isize,
+            0.0,
+            1.0,
+            false,
+            false,
+            false,
+            gemm::Parallelism::None,
+        );
     }
 }
 
 /// Offers a row of approximate squared distances to a query's candidate list. Most
-/// entries lose to the current worst candidate, so blocks are first screened by their
-/// minimum, which compiles to vector instructions.
+/// entries lose to the current worst candidate, so each block is first screened with one
+/// vectorised comparison of all its entries; the scan is compiled for AVX-512 and for AVX2
+/// as well as for the baseline instruction set, and the best the processor has is chosen
+/// at run time.
 fn scan_row(
     approx: &[f32],
     tile_start: usize,
@@ -101,16 +192,108 @@ fn scan_row(
     exclusion: Exclusion,
     own: usize,
 ) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::arch::is_x86_feature_detected!("avx512f") {
+            // SAFETY: the processor has just been seen to support AVX-512F.
+            return unsafe { scan_row_avx512(approx, tile_start, list, exclusion, own) };
+        }
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the processor has just been seen to support AVX2.
+            return unsafe { scan_row_avx2(approx, tile_start, list, exclusion, own) };
+        }
+    }
+    scan_row_portable(approx, tile_start, list, exclusion, own)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn scan_row_avx512(
+    approx: &[f32],
+    tile_start: usize,
+    list: &mut Candidates,
+    exclusion: Exclusion,
+    own: usize,
+) {
+    scan_row_with(approx, tile_start, list, exclusion, own, |block, bound| {
+        // Safe to call: the closure inherits this function's AVX-512F.
+        mask_below_avx512(block, bound)
+    })
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn scan_row_avx2(
+    approx: &[f32],
+    tile_start: usize,
+    list: &mut Candidates,
+    exclusion: Exclusion,
+    own: usize,
+) {
+    scan_row_with(approx, tile_start, list, exclusion, own, mask_below)
+}
+
+fn scan_row_portable(
+    approx: &[f32],
+    tile_start: usize,
+    list: &mut Candidates,
+    exclusion: Exclusion,
+    own: usize,
+) {
+    scan_row_with(approx, tile_start, list, exclusion, own, mask_below);
+}
+
+/// Bit `i` set where `block[i] < bound`: comparisons without an order to keep, so the
+/// compiler vectorises them for whatever instruction set the caller enables.
+#[inline(always)]
+fn mask_below(block: &[f32], bound: f32) -> u32 {
+    block
+        .iter()
+        .enumerate()
+        .fold(0_u32, |mask, (i, &v)| mask | (u32::from(v < bound) << i))
+}
+
+/// [`mask_below`] for a full block, two AVX-512 comparisons straight into mask registers.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+#[inline]
+fn mask_below_avx512(block: &[f32], bound: f32) -> u32 {
+    use std::arch::x86_64::{_mm512_cmp_ps_mask, _mm512_loadu_ps, _mm512_set1_ps, _CMP_LT_OQ};
+    if block.len() != SCAN_LANES {
+        return mask_below(block, bound);
+    }
+    // SAFETY: the block holds 32 floats (checked above), so both 16-float loads are in
+    // bounds; unaligned loads need no alignment.
+    unsafe {
+        let bound = _mm512_set1_ps(bound);
+        let low = _mm512_loadu_ps(block.as_ptr());
+        let high = _mm512_loadu_ps(block.as_ptr().add(16));
+        u32::from(_mm512_cmp_ps_mask::<_CMP_LT_OQ>(low, bound))
+            | (u32::from(_mm512_cmp_ps_mask::<_CMP_LT_OQ>(high, bound)) << 16)
+    }
+}
+
+/// The scan itself, with the block screening `mask` supplies.
+#[inline(always)]
+fn scan_row_with(
+    approx: &[f32],
+    tile_start: usize,
+    list: &mut Candidates,
+    exclusion: Exclusion,
+    own: usize,
+    mask: impl Fn(&[f32], f32) -> u32,
+) {
     let mut worst = list.worst() as f32;
     for (block_index, block) in approx.chunks(SCAN_LANES).enumerate() {
-        let block_min = block
-            .iter()
-            .fold(f32::INFINITY, |m, &v| if v < m { v } else { m });
-        if block_min >= worst {
-            continue;
-        }
+        // Most blocks hold no entry below the worst candidate: their mask is 0 and they cost
+        // nothing more.
+        let mut below = mask(block, worst);
         let base = tile_start + block_index * SCAN_LANES;
-        for (offset, &value) in block.iter().enumerate() {
+        while below != 0 {
+            let offset = below.trailing_zeros() as usize;
+            below &= below - 1;
+            let value = block[offset];
+            // The worst candidate may have improved since the mask was taken.
             if value < worst {
                 let ri = base + offset;
                 if exclusion == Exclusion::SameIndex && ri == own {
@@ -138,29 +321,31 @@ impl BruteForceIndex {
                 .map(|(qi, q)| self.exhaustive(q, first_query + qi, k, exclusion))
                 .collect();
         }
-        let n = self.rows.nrows();
+        let (n, d) = self.rows.dim();
+        let width = d + 2;
         let keep = (k + EXTRA_CANDIDATES).min(n);
-        let centred_queries = (&queries - &self.center).mapv(|v| v as f32);
-        let query_norms: Vec<f32> = centred_queries
-            .outer_iter()
-            .map(|q| q.iter().map(|&v| f64::from(v) * f64::from(v)).sum::<f64>() as f32)
-            .collect();
-        let mut lists: Vec<Candidates> = (0..queries.nrows())
-            .map(|_| Candidates::new(keep))
-            .collect();
-        let norms = self.centred_norms.as_slice().expect("contiguous norms");
+        let m = queries.nrows();
+        // Each query as [q - center, ‖q - center‖², 1], rounded as the rows were.
+        let mut augmented = vec![0.0_f32; m * width];
+        let mut query_norms = Vec::with_capacity(m);
+        for (out, q) in augmented.chunks_exact_mut(width).zip(queries.outer_iter()) {
+            let mut norm = 0.0_f64;
+            for ((o, &v), &c) in out.iter_mut().zip(q.iter()).zip(self.center.iter()) {
+                *o = (v - c) as f32;
+                norm += f64::from(*o) * f64::from(*o);
+            }
+            out[d] = norm as f32;
+            out[d + 1] = 1.0;
+            query_norms.push(norm);
+        }
+        let mut lists: Vec<Candidates> = (0..m).map(|_| Candidates::new(keep)).collect();
+        let mut approx = vec![0.0_f32; m * ROW_TILE];
 
         for tile_start in (0..n).step_by(ROW_TILE) {
-            let tile_end = (tile_start + ROW_TILE).min(n);
-            let tile = self.centred.slice(s![tile_start..tile_end, ..]);
-            let mut approx = centred_queries.dot(&tile.t());
-            let tile_norms = &norms[tile_start..tile_end];
-            for (qi, (mut row, list)) in approx.outer_iter_mut().zip(lists.iter_mut()).enumerate() {
-                let qn = query_norms[qi];
-                let row = row.as_slice_mut().expect("a fresh product is contiguous");
-                for (p, &rn) in row.iter_mut().zip(tile_norms) {
-                    *p = qn + rn - 2.0 * *p;
-                }
+            let (tile, len) = self.tile(tile_start);
+            let approx = &mut approx[..m * len];
+            product(approx, &augmented, tile, m, len, width);
+            for (qi, (row, list)) in approx.chunks_exact(len).zip(lists.iter_mut()).enumerate() {
                 scan_row(row, tile_start, list, exclusion, first_query + qi);
             }
         }
@@ -182,7 +367,7 @@ impl BruteForceIndex {
                 // A row not nominated has approximate distance >= boundary, so its exact
                 // distance is at least boundary - 2 x error. If that could beat the k-th
                 // exact distance, the nomination may have missed it: search exhaustively.
-                let error = self.single_precision_error(f64::from(query_norms[qi]));
+                let error = self.single_precision_error(query_norms[qi]);
                 let kth = exact.last().map(|&(d, _)| d).unwrap_or(0.0);
                 let candidates_available = n - usize::from(exclusion == Exclusion::SameIndex);
                 let complete = list.items.len() >= candidates_available;

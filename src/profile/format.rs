@@ -419,7 +419,7 @@ fn build(
     if feature_location.len() != p
         || feature_covariance.len() != p * p
         || p == 0
-        || feature_rows.len() % p != 0
+        || !feature_rows.len().is_multiple_of(p)
         || (scope == ProfileScope::Complete && feature_rows.is_empty())
     {
         return Err(bad("the feature distribution has the wrong size"));
