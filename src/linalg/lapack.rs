@@ -11,7 +11,7 @@
 //! (`OPENBLAS_NUM_THREADS=1`); this file deliberately does not change it.
 
 use ndarray::{Array1, Array2, ArrayView2, ShapeBuilder};
-use ndarray_linalg::{Cholesky, Diag, Eigh, SolveTriangular, UPLO};
+use ndarray_linalg::{Cholesky, Diag, Eigh, SolveTriangularInplace, UPLO};
 
 pub(super) const NAME: &str = "lapack (ndarray-linalg, OpenBLAS)";
 
@@ -50,22 +50,30 @@ pub(super) fn solve_lower_block(l: &Array2<f64>, rows: ArrayView2<'_, f64>) -> A
     if m == 0 || d == 0 {
         return Array2::zeros((m, d));
     }
-    // Both operands column-major, so dtrtrs runs on them without further copies. The
-    // right-hand sides are the columns of the d x m matrix `rowsᵀ`; `rows` may be any view.
+    // One right-hand side per call: OpenBLAS picks its triangular-solve kernel by the number
+    // of right-hand sides, and different kernels round differently, so solving a batch at
+    // once would make a row's distance depend on how many rows came with it (seen on an
+    // AVX-512 machine: one row alone and the same row among three differed in the last
+    // digits). Row by row, every row gets the same answer in any batch, as with the pure-Rust
+    // backend's column-by-column substitution. The factor is column-major so dtrtrs reads
+    // it without a copy.
     let mut factor = Array2::<f64>::zeros((d, d).f());
     factor.assign(l);
-    let mut rhs = Array2::<f64>::zeros((d, m).f());
-    rhs.assign(&rows.t());
-    match factor.solve_triangular(UPLO::Lower, Diag::NonUnit, &rhs) {
-        // The d x m column-major solution, transposed, is m x d in standard layout.
-        Ok(solved) => solved.reversed_axes().as_standard_layout().into_owned(),
-        Err(error) => {
-            // Positive pivots were checked by the caller, so dtrtrs cannot report a singular
-            // factor; anything else is a bug in the arguments.
-            debug_assert!(false, "triangular solve failed: {error}");
-            Array2::from_elem((m, d), f64::NAN)
+    let mut out = Array2::<f64>::zeros((m, d));
+    let mut rhs = Array2::<f64>::zeros((d, 1).f());
+    for (row, mut target) in rows.outer_iter().zip(out.outer_iter_mut()) {
+        rhs.column_mut(0).assign(&row);
+        match factor.solve_triangular_inplace(UPLO::Lower, Diag::NonUnit, &mut rhs) {
+            Ok(solved) => target.assign(&solved.column(0)),
+            Err(error) => {
+                // Positive pivots were checked by the caller, so dtrtrs cannot report a
+                // singular factor; anything else is a bug in the arguments.
+                debug_assert!(false, "triangular solve failed: {error}");
+                target.fill(f64::NAN);
+            }
         }
     }
+    out
 }
 
 pub(super) fn symmetric_eigen(a: &Array2<f64>) -> Option<(Array1<f64>, Array2<f64>)> {
