@@ -100,6 +100,26 @@ impl BruteForceIndex {
     }
 }
 
+/// Writes `row - center` rounded to single precision into `out`. Returns the squared norm
+/// of the rounded coordinates (the vector the product sees, so rows and queries are
+/// measured alike) and the largest centred magnitude before rounding.
+#[inline]
+fn centre_rounded(
+    row: ArrayView1<'_, f64>,
+    center: ArrayView1<'_, f64>,
+    out: &mut [f32],
+) -> (f64, f64) {
+    let mut norm = 0.0_f64;
+    let mut largest = 0.0_f64;
+    for ((o, &v), &m) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
+        let t = v - m;
+        largest = largest.max(t.abs());
+        *o = t as f32;
+        norm += f64::from(*o) * f64::from(*o);
+    }
+    (norm, largest)
+}
+
 /// Rows transposed per block of this many, so that both the reads and the writes of the
 /// transposition touch whole cache lines.
 const TRANSPOSE_BLOCK: usize = 16;
@@ -119,15 +139,8 @@ fn fill_tile(
         let count = TRANSPOSE_BLOCK.min(len - first);
         for j in 0..count {
             let row = rows.row(first + j);
-            let out = &mut centred[j * d..(j + 1) * d];
-            // The norm is that of the rounded coordinates, the vector the product sees.
-            let mut norm = 0.0_f64;
-            for ((o, &v), &m) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
-                let t = v - m;
-                largest = largest.max(t.abs());
-                *o = t as f32;
-                norm += f64::from(*o) * f64::from(*o);
-            }
+            let (norm, row_largest) = centre_rounded(row, center, &mut centred[j * d..(j + 1) * d]);
+            largest = largest.max(row_largest);
             block[d * len + first + j] = 1.0;
             block[(d + 1) * len + first + j] = norm as f32;
             max_norm = max_norm.max(norm);
@@ -329,11 +342,7 @@ impl BruteForceIndex {
         let mut augmented = vec![0.0_f32; m * width];
         let mut query_norms = Vec::with_capacity(m);
         for (out, q) in augmented.chunks_exact_mut(width).zip(queries.outer_iter()) {
-            let mut norm = 0.0_f64;
-            for ((o, &v), &c) in out.iter_mut().zip(q.iter()).zip(self.center.iter()) {
-                *o = (v - c) as f32;
-                norm += f64::from(*o) * f64::from(*o);
-            }
+            let (norm, _) = centre_rounded(q, self.center.view(), &mut out[..d]);
             out[d] = norm as f32;
             out[d + 1] = 1.0;
             query_norms.push(norm);
