@@ -31,8 +31,9 @@ pub const BACKEND: &str = backend::NAME;
 /// matrix factors with a pivot ratio near √ε ≈ 1.5e-8 and is refused.
 const MIN_PIVOT_RATIO: f64 = 1e-7;
 
-/// Rows per parallel block of a batched triangular solve.
-const SOLVE_BLOCK_ROWS: usize = 2048;
+/// Rows per parallel block of a batched triangular solve: small enough that a few thousand
+/// rows still make several blocks per core.
+const SOLVE_BLOCK_ROWS: usize = 256;
 
 /// Lower Cholesky factor `L` with `a = L Lᵀ`, or `None` when `a` is not (numerically)
 /// positive definite. Only the lower triangle of `a` is read.

@@ -193,67 +193,107 @@ fn product(out: &mut [f32], lhs: &[f32], rhs: &[f32], m: usize, n: usize, k: usi
     }
 }
 
-/// Offers a row of approximate squared distances to a query's candidate list. Most
-/// entries lose to the current worst candidate, so each block is first screened with one
-/// vectorised comparison of all its entries; the scan is compiled for AVX-512 and for AVX2
-/// as well as for the baseline instruction set, and the best the processor has is chosen
-/// at run time.
-fn scan_row(
-    approx: &[f32],
-    tile_start: usize,
-    list: &mut Candidates,
-    exclusion: Exclusion,
-    own: usize,
-) {
+/// The instruction set the candidate scan is compiled for, chosen once per search from
+/// what the processor has.
+#[derive(Clone, Copy)]
+enum ScanKernel {
     #[cfg(target_arch = "x86_64")]
-    {
-        if std::arch::is_x86_feature_detected!("avx512f") {
-            // SAFETY: the processor has just been seen to support AVX-512F.
-            return unsafe { scan_row_avx512(approx, tile_start, list, exclusion, own) };
+    Avx512,
+    #[cfg(target_arch = "x86_64")]
+    Avx2,
+    Portable,
+}
+
+impl ScanKernel {
+    fn detect() -> Self {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx512f") {
+                return ScanKernel::Avx512;
+            }
+            if std::arch::is_x86_feature_detected!("avx2") {
+                return ScanKernel::Avx2;
+            }
         }
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the processor has just been seen to support AVX2.
-            return unsafe { scan_row_avx2(approx, tile_start, list, exclusion, own) };
+        ScanKernel::Portable
+    }
+}
+
+/// One tile's products to scan: `len` approximate squared distances per query, the
+/// queries' rows one after another, for the tile of indexed rows starting at `tile_start`.
+#[derive(Clone, Copy)]
+struct TileScan<'a> {
+    approx: &'a [f32],
+    len: usize,
+    tile_start: usize,
+    exclusion: Exclusion,
+    first_query: usize,
+}
+
+impl TileScan<'_> {
+    /// Offers each query's row to its candidate list, with the screens given; inlined into
+    /// each caller so that the screens compile for the caller's instruction set.
+    #[inline(always)]
+    fn offer_rows(
+        self,
+        lists: &mut [Candidates],
+        mask: impl Fn(&[f32], f32) -> u32 + Copy,
+        any_below: impl Fn(&[f32], f32) -> bool + Copy,
+    ) {
+        let rows = self.approx.chunks_exact(self.len);
+        for (qi, (row, list)) in rows.zip(lists.iter_mut()).enumerate() {
+            let own = self.first_query + qi;
+            scan_row_with(
+                row,
+                self.tile_start,
+                list,
+                self.exclusion,
+                own,
+                mask,
+                any_below,
+            );
         }
     }
-    scan_row_portable(approx, tile_start, list, exclusion, own)
-}
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-unsafe fn scan_row_avx512(
-    approx: &[f32],
-    tile_start: usize,
-    list: &mut Candidates,
-    exclusion: Exclusion,
-    own: usize,
-) {
-    scan_row_with(approx, tile_start, list, exclusion, own, |block, bound| {
-        // Safe to call: the closure inherits this function's AVX-512F.
-        mask_below_avx512(block, bound)
-    })
-}
+    /// Offers the tile to the queries' candidate lists. Most entries lose to the current
+    /// worst candidate, so rows and blocks of entries are first screened with vectorised
+    /// comparisons, compiled for the instruction set `kernel` names.
+    fn offer_to(self, kernel: ScanKernel, lists: &mut [Candidates]) {
+        match kernel {
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: `ScanKernel::detect` chose this kernel: the processor has AVX-512F.
+            ScanKernel::Avx512 => unsafe { self.offer_avx512(lists) },
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: `ScanKernel::detect` chose this kernel: the processor has AVX2.
+            ScanKernel::Avx2 => unsafe { self.offer_avx2(lists) },
+            ScanKernel::Portable => self.offer_rows(lists, mask_below, |row, bound| {
+                row.iter().fold(false, |any, &v| any | (v < bound))
+            }),
+        }
+    }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn scan_row_avx2(
-    approx: &[f32],
-    tile_start: usize,
-    list: &mut Candidates,
-    exclusion: Exclusion,
-    own: usize,
-) {
-    scan_row_with(approx, tile_start, list, exclusion, own, mask_below)
-}
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    unsafe fn offer_avx512(self, lists: &mut [Candidates]) {
+        // Safe to call: the closures inherit this function's AVX-512F.
+        let mask = |block: &[f32], bound| mask_below_avx512(block, bound);
+        self.offer_rows(lists, mask, |row, bound| {
+            row.chunks(SCAN_LANES)
+                .fold(0, |any, block| any | mask(block, bound))
+                != 0
+        });
+    }
 
-fn scan_row_portable(
-    approx: &[f32],
-    tile_start: usize,
-    list: &mut Candidates,
-    exclusion: Exclusion,
-    own: usize,
-) {
-    scan_row_with(approx, tile_start, list, exclusion, own, mask_below);
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn offer_avx2(self, lists: &mut [Candidates]) {
+        // Safe to call: the closures inherit this function's AVX2.
+        self.offer_rows(
+            lists,
+            |block, bound| mask_below_avx2(block, bound),
+            |row, bound| any_below_avx2(row, bound),
+        );
+    }
 }
 
 /// Bit `i` set where `block[i] < bound`: comparisons without an order to keep, so the
@@ -286,7 +326,67 @@ fn mask_below_avx512(block: &[f32], bound: f32) -> u32 {
     }
 }
 
-/// The scan itself, with the block screening `mask` supplies.
+/// [`mask_below`] for a full block with AVX2: four 8-float comparisons, OR-ed and tested
+/// first, so that a block with no entry below the bound (the usual case) costs one branch;
+/// otherwise each comparison's sign bits become 8 bits of the mask.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn mask_below_avx2(block: &[f32], bound: f32) -> u32 {
+    use std::arch::x86_64::{
+        _mm256_cmp_ps, _mm256_loadu_ps, _mm256_movemask_ps, _mm256_or_ps, _mm256_set1_ps,
+        _mm256_testz_ps, _CMP_LT_OQ,
+    };
+    if block.len() != SCAN_LANES {
+        return mask_below(block, bound);
+    }
+    // SAFETY: the block holds 32 floats (checked above), so the four 8-float loads are in
+    // bounds; unaligned loads need no alignment.
+    unsafe {
+        let bound = _mm256_set1_ps(bound);
+        let p = block.as_ptr();
+        let c0 = _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(p), bound);
+        let c1 = _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(p.add(8)), bound);
+        let c2 = _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(p.add(16)), bound);
+        let c3 = _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(p.add(24)), bound);
+        let any = _mm256_or_ps(_mm256_or_ps(c0, c1), _mm256_or_ps(c2, c3));
+        if _mm256_testz_ps(any, any) != 0 {
+            return 0;
+        }
+        (_mm256_movemask_ps(c0) as u32)
+            | ((_mm256_movemask_ps(c1) as u32) << 8)
+            | ((_mm256_movemask_ps(c2) as u32) << 16)
+            | ((_mm256_movemask_ps(c3) as u32) << 24)
+    }
+}
+
+/// Whether any entry of `row` is below `bound`, eight at a time with AVX2: the comparisons
+/// are OR-ed together and tested once at the end.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn any_below_avx2(row: &[f32], bound: f32) -> bool {
+    use std::arch::x86_64::{
+        _mm256_cmp_ps, _mm256_loadu_ps, _mm256_or_ps, _mm256_set1_ps, _mm256_setzero_ps,
+        _mm256_testz_ps, _CMP_LT_OQ,
+    };
+    let (octets, rest) = row.as_chunks::<8>();
+    // SAFETY: each load reads one 8-float chunk of `row`; unaligned loads need no
+    // alignment.
+    let any = unsafe {
+        let bound_lanes = _mm256_set1_ps(bound);
+        let mut any = _mm256_setzero_ps();
+        for octet in octets {
+            let below = _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(octet.as_ptr()), bound_lanes);
+            any = _mm256_or_ps(any, below);
+        }
+        _mm256_testz_ps(any, any) == 0
+    };
+    any || rest.iter().any(|&v| v < bound)
+}
+
+/// The scan itself, with the row screening `any_below` and the block screening `mask`
+/// supply.
 #[inline(always)]
 fn scan_row_with(
     approx: &[f32],
@@ -295,8 +395,15 @@ fn scan_row_with(
     exclusion: Exclusion,
     own: usize,
     mask: impl Fn(&[f32], f32) -> u32,
+    any_below: impl Fn(&[f32], f32) -> bool,
 ) {
     let mut worst = list.worst() as f32;
+    // Once the list has filled, most rows of a tile hold no entry below its worst
+    // candidate: one pass of comparisons over the whole row, with no branch inside, rules
+    // them out.
+    if !any_below(approx, worst) {
+        return;
+    }
     for (block_index, block) in approx.chunks(SCAN_LANES).enumerate() {
         // Most blocks hold no entry below the worst candidate: their mask is 0 and they cost
         // nothing more.
@@ -349,14 +456,20 @@ impl BruteForceIndex {
         }
         let mut lists: Vec<Candidates> = (0..m).map(|_| Candidates::new(keep)).collect();
         let mut approx = vec![0.0_f32; m * ROW_TILE];
+        let kernel = ScanKernel::detect();
 
         for tile_start in (0..n).step_by(ROW_TILE) {
             let (tile, len) = self.tile(tile_start);
             let approx = &mut approx[..m * len];
             product(approx, &augmented, tile, m, len, width);
-            for (qi, (row, list)) in approx.chunks_exact(len).zip(lists.iter_mut()).enumerate() {
-                scan_row(row, tile_start, list, exclusion, first_query + qi);
-            }
+            let scan = TileScan {
+                approx,
+                len,
+                tile_start,
+                exclusion,
+                first_query,
+            };
+            scan.offer_to(kernel, &mut lists);
         }
 
         lists
@@ -424,4 +537,45 @@ mod tests {
     use super::*;
 
     conformance::shared_tests!(BruteForceIndex::new);
+
+    /// The vector screens answer as the portable comparisons do, on rows of every length
+    /// from 0 to 70 (whole blocks and remainders) with entries equal to, just below and
+    /// just above the bound, and on the infinite bound of an unfilled list.
+    #[cfg(target_arch = "x86_64")]
+    #[test]
+    fn vector_screens_agree_with_the_portable_comparisons() {
+        let bounds = [1.0_f32, 0.0, -1.0, f32::INFINITY];
+        for len in 0..=70 {
+            for shift in 0..3 {
+                let row: Vec<f32> = (0..len)
+                    .map(|i| match (i * 7 + shift) % 5 {
+                        0 => 1.0,
+                        1 => 1.0 - f32::EPSILON,
+                        2 => 1.0 + f32::EPSILON,
+                        3 => 50.0,
+                        _ => -3.0,
+                    })
+                    .collect();
+                for &bound in &bounds {
+                    let expected = row.iter().any(|&v| v < bound);
+                    if std::arch::is_x86_feature_detected!("avx2") {
+                        // SAFETY: the processor has just been seen to support AVX2.
+                        let any = unsafe { any_below_avx2(&row, bound) };
+                        assert_eq!(any, expected, "len {len}, bound {bound}");
+                    }
+                    for block in row.chunks(SCAN_LANES) {
+                        let expected = mask_below(block, bound);
+                        if std::arch::is_x86_feature_detected!("avx2") {
+                            // SAFETY: as above.
+                            assert_eq!(unsafe { mask_below_avx2(block, bound) }, expected);
+                        }
+                        if std::arch::is_x86_feature_detected!("avx512f") {
+                            // SAFETY: the processor has just been seen to support AVX-512F.
+                            assert_eq!(unsafe { mask_below_avx512(block, bound) }, expected);
+                        }
+                    }
+                }
+            }
+        }
+    }
 }

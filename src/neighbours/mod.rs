@@ -153,18 +153,22 @@ pub(crate) fn refuse_non_finite(
     }
 }
 
-/// Squared Euclidean distance summed coordinate by coordinate in double precision. Every
-/// index computes its returned distances with this one function, so equal answers are
-/// equal to the last bit.
+/// Squared Euclidean distance summed coordinate by coordinate in double precision (the
+/// definition, in its order; contiguous rows take a slice loop without the strided
+/// iterator's bookkeeping, which sums in the same order). Every index computes its
+/// returned distances with this one function, so equal answers are equal to the last bit.
 #[inline]
 pub(crate) fn exact_squared_distance(a: ArrayView1<'_, f64>, b: ArrayView1<'_, f64>) -> f64 {
-    a.iter()
-        .zip(b.iter())
-        .map(|(x, y)| {
+    match (a.as_slice(), b.as_slice()) {
+        (Some(a), Some(b)) => a.iter().zip(b).fold(0.0, |sum, (x, y)| {
             let t = x - y;
-            t * t
-        })
-        .sum()
+            sum + t * t
+        }),
+        _ => a.iter().zip(b.iter()).fold(0.0, |sum, (x, y)| {
+            let t = x - y;
+            sum + t * t
+        }),
+    }
 }
 
 /// Orders `(squared distance, index)` pairs nearest first, ties by the lower index.
@@ -195,18 +199,38 @@ impl Candidates {
         }
     }
 
+    /// Inserts `(d2, index)` in order if it ranks before the worst candidate (nearer, or as
+    /// near with a lower index), dropping the worst when the list is full. Offers arrive in increasing index order and mostly rank near
+    /// the end, so the place is found by shifting entries back from the end, in place.
     #[inline]
     pub(crate) fn offer(&mut self, d2: f64, index: usize) {
-        if d2 >= self.worst() && self.items.len() >= self.capacity {
+        let full = self.items.len() >= self.capacity;
+        if self.capacity == 0 {
             return;
         }
-        let at = self
-            .items
-            .partition_point(|&(d, i)| d < d2 || (d == d2 && i < index));
-        self.items.insert(at, (d2, index));
-        if self.items.len() > self.capacity {
-            self.items.pop();
+        if full {
+            // Beaten or tied by a lower index: the offer ranks after the worst kept.
+            let (d, i) = self.items[self.items.len() - 1];
+            if d < d2 || (d == d2 && i < index) {
+                return;
+            }
         }
+        let mut at = if full {
+            self.items.len() - 1
+        } else {
+            self.items.push((d2, index));
+            self.items.len() - 1
+        };
+        // Ties go by index, as in `nearest_first`; the distances here are never NaN.
+        while at > 0 {
+            let (d, i) = self.items[at - 1];
+            if d < d2 || (d == d2 && i < index) {
+                break;
+            }
+            self.items[at] = self.items[at - 1];
+            at -= 1;
+        }
+        self.items[at] = (d2, index);
     }
 }
 
@@ -286,5 +310,62 @@ mod tests {
         };
         assert!((recall(&exact, &approximate) - 5.0 / 6.0).abs() < 1e-15);
         assert_eq!(recall(&exact, &exact), 1.0);
+    }
+
+    /// The bounded list keeps what a full sort of every offer keeps (the definition of
+    /// the k smallest, ties by index): offers with many repeated distances, in index order as
+    /// the scans make them and in scrambled order, for capacities 1 to 20.
+    #[test]
+    fn the_candidate_list_keeps_the_smallest_offers() {
+        for capacity in 1..=20 {
+            for scrambled in [false, true] {
+                let offers: Vec<(f64, usize)> = (0..300)
+                    .map(|i| {
+                        let index = if scrambled { (i * 37) % 300 } else { i };
+                        (((index * 7919) % 23) as f64 * 0.5, index)
+                    })
+                    .collect();
+                let mut list = Candidates::new(capacity);
+                for &(d2, index) in &offers {
+                    list.offer(d2, index);
+                }
+                let mut sorted = offers.clone();
+                sorted.sort_by(nearest_first);
+                sorted.truncate(capacity);
+                assert_eq!(
+                    list.items, sorted,
+                    "capacity {capacity}, scrambled {scrambled}"
+                );
+            }
+        }
+    }
+
+    /// The strided path of the exact distance (a column of a matrix) and the slice path
+    /// (the same numbers copied out) sum in the same order as the definition, so they
+    /// agree with it and with each other to the last bit.
+    #[test]
+    fn strided_and_contiguous_distances_agree_to_the_bit() {
+        for d in 0..14 {
+            let a =
+                Array2::from_shape_fn((d, 2), |(i, j)| (i as f64 * 1.37 + j as f64).sin() * 1e3);
+            let b = Array2::from_shape_fn((d, 2), |(i, j)| (i as f64 * 0.71 - j as f64).cos());
+            let strided = exact_squared_distance(a.column(0), b.column(1));
+            let contiguous = exact_squared_distance(
+                a.column(0).to_owned().view(),
+                b.column(1).to_owned().view(),
+            );
+            assert_eq!(strided.to_bits(), contiguous.to_bits(), "d = {d}");
+            let plain: f64 = a
+                .column(0)
+                .iter()
+                .zip(b.column(1))
+                .map(|(x, y)| (x - y) * (x - y))
+                .sum();
+            // (An empty sum is +0 here and -0 for `Sum`: equal, not the same bits.)
+            assert!(
+                strided.to_bits() == plain.to_bits() || strided == plain,
+                "d = {d}"
+            );
+        }
     }
 }

@@ -21,6 +21,7 @@ use std::io::{Read, Write};
 use std::path::Path;
 
 use ndarray::{Array1, Array2};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use super::{FeatureDistribution, Profile, ProfileSettings};
@@ -341,22 +342,30 @@ fn read_profile(
             .into());
         }
         let keep = scope == ProfileScope::Complete || expected != "feature_rows";
-        let mut data: Vec<f64> = Vec::with_capacity(if keep { section.len } else { 0 });
-        let mut left = section.len * 8;
-        while left > 0 {
-            let step = left.min(PIECE_BYTES);
-            read_exact(&mut source, &mut piece[..step])?;
-            hasher.update(&piece[..step]);
-            if keep {
-                data.extend(
-                    piece[..step]
-                        .chunks_exact(8)
-                        .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes"))),
-                );
+        if keep {
+            // Read straight into the values' storage, a piece at a time so that the checksum
+            // reads each piece while it is still in cache; the file is little-endian.
+            let mut data = vec![0.0_f64; section.len];
+            for piece in bytemuck::cast_slice_mut::<f64, u8>(&mut data).chunks_mut(PIECE_BYTES) {
+                read_exact(&mut source, piece)?;
+                hasher.update(piece);
             }
-            left -= step;
+            if cfg!(target_endian = "big") {
+                for v in &mut data {
+                    *v = f64::from_bits(u64::from_le(v.to_bits()));
+                }
+            }
+            sections.push(data);
+        } else {
+            let mut left = section.len * 8;
+            while left > 0 {
+                let step = left.min(PIECE_BYTES);
+                read_exact(&mut source, &mut piece[..step])?;
+                hasher.update(&piece[..step]);
+                left -= step;
+            }
+            sections.push(Vec::new());
         }
-        sections.push(data);
     }
     let mut graph = vec![0u8; header.index_graph_bytes];
     read_exact(&mut source, &mut graph)?;
@@ -379,6 +388,14 @@ fn read_profile(
         .into());
     }
     Ok(build(header, sections, &graph, scope)?)
+}
+
+/// Whether every value is finite, checked in parallel blocks: the row sections of a large
+/// profile hold hundreds of millions of values.
+fn all_finite(values: &[f64]) -> bool {
+    values
+        .par_chunks(1 << 16)
+        .all(|block| block.iter().all(|v| v.is_finite()))
 }
 
 fn build(
@@ -432,18 +449,20 @@ fn build(
     {
         return Err(bad("calibration scores are missing or unequal in number"));
     }
-    let all_finite = rows
-        .iter()
-        .chain(&k_distance)
-        .chain(&density)
-        .chain(&calibration_mahalanobis)
-        .chain(&calibration_knn)
-        .chain(&feature_rows)
-        .chain(&feature_location)
-        .chain(&feature_covariance)
-        .chain(&header.location)
-        .chain(header.covariance.iter().flatten())
-        .all(|v| v.is_finite());
+    let all_finite = [
+        &rows,
+        &k_distance,
+        &density,
+        &calibration_mahalanobis,
+        &calibration_knn,
+        &feature_rows,
+        &feature_location,
+        &feature_covariance,
+        &header.location,
+    ]
+    .into_iter()
+    .all(|values| all_finite(values))
+        && header.covariance.iter().flatten().all(|v| v.is_finite());
     if !all_finite {
         return Err(bad("non-finite values"));
     }
