@@ -18,6 +18,8 @@
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use rayon::prelude::*;
 
+#[cfg(target_arch = "x86_64")]
+use super::fused;
 use super::{
     check_request, exact_squared_distance, exhaustive, nearest_first, search_in_blocks, Candidates,
     Exclusion, NeighbourIndex, Neighbours,
@@ -37,15 +39,79 @@ const SCAN_LANES: usize = 32;
 /// such data is searched in double precision throughout.
 const SINGLE_PRECISION_LIMIT: f64 = 1e15;
 
+/// Values per line of the candidate pass's operand.
+pub(super) const LINE_LANES: usize = 16;
+
+/// Sixteen values of the candidate pass's operand, aligned to a cache line, so that the
+/// fused kernel's panels (one line per coordinate) start on line boundaries.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+#[repr(C, align(64))]
+pub(super) struct Line(pub(super) [f32; LINE_LANES]);
+
+// SAFETY: `Line` is `repr(C)`, sixteen `f32` (64 bytes) with an alignment of 64, so it has
+// no padding, and every bit pattern is a valid value.
+unsafe impl bytemuck::Zeroable for Line {}
+// SAFETY: as above; `Line` is `Copy` and `'static`.
+unsafe impl bytemuck::Pod for Line {}
+
+/// How the candidate pass computes and screens its products, chosen once per index from
+/// what the processor has.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum CandidatePass {
+    /// Products of a query block and a tile of rows in the `gemm` crate's blocked kernels
+    /// (AVX-512 where the processor has it), written to a buffer and then scanned. The
+    /// operand is stored tile after tile: for the tile of rows `t·ROW_TILE..`, a
+    /// `(dim + 2) x tile_len` row-major block.
+    Product,
+    /// Kilter's own AVX2 micro-kernel, which screens each 6 x 16 block of products while it
+    /// is still in registers (see `fused`). The operand is stored in panels of 16 rows,
+    /// `dim + 2` lines each, the last panel padded with rows at infinite distance.
+    #[cfg(target_arch = "x86_64")]
+    FusedAvx2,
+}
+
+impl CandidatePass {
+    /// The fused kernel on AVX2 machines without AVX-512 for operands that fit it; the
+    /// blocked product elsewhere, whose AVX-512 kernels beat AVX2 code where they run.
+    fn detect(width: usize) -> Self {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if !std::arch::is_x86_feature_detected!("avx512f")
+                && std::arch::is_x86_feature_detected!("avx2")
+                && std::arch::is_x86_feature_detected!("fma")
+                && width <= fused::MAX_WIDTH
+            {
+                return CandidatePass::FusedAvx2;
+            }
+        }
+        let _ = width;
+        CandidatePass::Product
+    }
+
+    /// Whether this machine can run the pass.
+    #[cfg(test)]
+    fn runs_here(self) -> bool {
+        match self {
+            CandidatePass::Product => true,
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx2 => {
+                std::arch::is_x86_feature_detected!("avx2")
+                    && std::arch::is_x86_feature_detected!("fma")
+            }
+        }
+    }
+}
+
 /// Exhaustive exact search over rows held in memory.
 #[derive(Debug, Clone)]
 pub struct BruteForceIndex {
     rows: Array2<f64>,
     center: Array1<f64>,
-    /// The candidate pass's right-hand operand, tile after tile: for the tile of rows
-    /// `t·ROW_TILE..`, a `(dim + 2) x tile_len` row-major block whose column `j` is
-    /// `[-2 (r_j - center), 1, ‖r_j - center‖²]` in single precision.
-    tiles: Vec<f32>,
+    pass: CandidatePass,
+    /// The candidate pass's right-hand operand in the layout `pass` reads: each indexed row
+    /// `r_j` as the column `[-2 (r_j - center), 1, ‖r_j - center‖²]` in single precision.
+    /// Held in cache lines so that the fused kernel's panels are aligned.
+    operand: Vec<Line>,
     max_centred_norm: f64,
     single_precision: bool,
 }
@@ -53,8 +119,14 @@ pub struct BruteForceIndex {
 impl BruteForceIndex {
     /// Indexes the rows (copied into standard layout).
     pub fn new(rows: Array2<f64>) -> Self {
+        let pass = CandidatePass::detect(rows.ncols() + 2);
+        Self::with_pass(rows, pass)
+    }
+
+    /// Indexes the rows for the candidate pass given.
+    pub(crate) fn with_pass(rows: Array2<f64>, pass: CandidatePass) -> Self {
         // No copy of a million-row matrix that is already in standard layout, and no
-        // double-precision centred copy: the single-precision tiles are filled row by row.
+        // double-precision centred copy: the single-precision operand is filled row by row.
         let rows = if rows.is_standard_layout() {
             rows
         } else {
@@ -63,18 +135,30 @@ impl BruteForceIndex {
         let (n, d) = rows.dim();
         let center = rows.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d));
         let width = d + 2;
-        let mut tiles = vec![0.0_f32; width * n];
-        // Tiles are independent: filled in parallel, each reporting its largest centred
+        // Blocks of rows with the stride each is stored at: whole tiles for the product,
+        // padded panels for the fused kernel.
+        let (block_rows, stored) = match pass {
+            CandidatePass::Product => (ROW_TILE, width * n),
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx2 => (
+                fused::PANEL_ROWS,
+                width * n.next_multiple_of(fused::PANEL_ROWS),
+            ),
+        };
+        let mut operand = vec![Line::default(); stored.div_ceil(LINE_LANES)];
+        let values: &mut [f32] = &mut bytemuck::cast_slice_mut(&mut operand)[..stored];
+        // Blocks are independent: filled in parallel, each reporting its largest centred
         // magnitude and norm.
-        let (largest, max_centred_norm) = tiles
-            .par_chunks_mut(ROW_TILE * width)
-            .zip(rows.axis_chunks_iter(Axis(0), ROW_TILE).into_par_iter())
-            .map(|(block, tile_rows)| fill_tile(block, tile_rows, center.view()))
+        let (largest, max_centred_norm) = values
+            .par_chunks_mut(block_rows * width)
+            .zip(rows.axis_chunks_iter(Axis(0), block_rows).into_par_iter())
+            .map(|(block, block_rows)| fill_block(block, block_rows, center.view()))
             .reduce(|| (0.0, 0.0), |a, b| (a.0.max(b.0), a.1.max(b.1)));
         BruteForceIndex {
             rows,
             center,
-            tiles,
+            pass,
+            operand,
             max_centred_norm,
             single_precision: largest < SINGLE_PRECISION_LIMIT,
         }
@@ -92,46 +176,82 @@ impl BruteForceIndex {
         2.0 * (d + 4.0) * f64::from(f32::EPSILON) * (query_norm + self.max_centred_norm)
     }
 
-    /// The operand block of the tile starting at row `tile_start`, and its length.
+    /// The operand block of the tile starting at row `tile_start`, and its length (the
+    /// product's layout).
     fn tile(&self, tile_start: usize) -> (&[f32], usize) {
         let width = self.rows.ncols() + 2;
         let len = ROW_TILE.min(self.rows.nrows() - tile_start);
-        (&self.tiles[tile_start * width..][..len * width], len)
+        let values: &[f32] = bytemuck::cast_slice(&self.operand);
+        (&values[tile_start * width..][..len * width], len)
     }
 }
 
 /// Writes `row - center` rounded to single precision into `out`. Returns the squared norm
 /// of the rounded coordinates (the vector the product sees, so rows and queries are
-/// measured alike) and the largest centred magnitude before rounding.
+/// measured alike) and the largest centred magnitude before rounding. The norm is summed in
+/// eight interleaved partial sums, so that the loop vectorises instead of waiting on one
+/// chain of additions; it only feeds the approximate pass and its error bound.
 #[inline]
 fn centre_rounded(
     row: ArrayView1<'_, f64>,
     center: ArrayView1<'_, f64>,
     out: &mut [f32],
 ) -> (f64, f64) {
-    let mut norm = 0.0_f64;
-    let mut largest = 0.0_f64;
-    for ((o, &v), &m) in out.iter_mut().zip(row.iter()).zip(center.iter()) {
+    const LANES: usize = 8;
+    let mut norms = [0.0_f64; LANES];
+    let mut largest = [0.0_f64; LANES];
+    let mut step = |lane: usize, o: &mut f32, v: f64, m: f64| {
         let t = v - m;
-        largest = largest.max(t.abs());
+        largest[lane] = largest[lane].max(t.abs());
         *o = t as f32;
-        norm += f64::from(*o) * f64::from(*o);
+        norms[lane] += f64::from(*o) * f64::from(*o);
+    };
+    match (row.as_slice(), center.as_slice()) {
+        (Some(row), Some(center)) => {
+            let (out_lanes, out_rest) = out.as_chunks_mut::<LANES>();
+            let (row_lanes, row_rest) = row.as_chunks::<LANES>();
+            let (center_lanes, center_rest) = center.as_chunks::<LANES>();
+            for ((o, v), m) in out_lanes.iter_mut().zip(row_lanes).zip(center_lanes) {
+                for lane in 0..LANES {
+                    step(lane, &mut o[lane], v[lane], m[lane]);
+                }
+            }
+            for ((o, &v), &m) in out_rest.iter_mut().zip(row_rest).zip(center_rest) {
+                step(0, o, v, m);
+            }
+        }
+        _ => {
+            for (i, ((o, &v), &m)) in out
+                .iter_mut()
+                .zip(row.iter())
+                .zip(center.iter())
+                .enumerate()
+            {
+                step(i % LANES, o, v, m);
+            }
+        }
     }
-    (norm, largest)
+    (
+        norms.iter().sum(),
+        largest.iter().copied().fold(0.0, f64::max),
+    )
 }
 
 /// Rows transposed per block of this many, so that both the reads and the writes of the
 /// transposition touch whole cache lines.
 const TRANSPOSE_BLOCK: usize = 16;
 
-/// Fills one tile's operand block (see [`BruteForceIndex::tiles`]) from its rows. Returns
-/// the largest centred magnitude and the largest centred norm among them.
-fn fill_tile(
+/// Fills one block of the operand (see [`BruteForceIndex::operand`]) from its rows: a
+/// `(dim + 2) x stride` row-major block whose first `rows` columns are the rows and whose
+/// remaining columns, if any, are padding rows at infinite distance (zero coordinates and
+/// an infinite norm). Returns the largest centred magnitude and the largest centred norm.
+fn fill_block(
     block: &mut [f32],
     rows: ArrayView2<'_, f64>,
     center: ArrayView1<'_, f64>,
 ) -> (f64, f64) {
     let (len, d) = rows.dim();
+    let stride = block.len() / (d + 2);
     let mut largest = 0.0_f64;
     let mut max_norm = 0.0_f64;
     let mut centred = vec![0.0_f32; TRANSPOSE_BLOCK * d];
@@ -141,16 +261,21 @@ fn fill_tile(
             let row = rows.row(first + j);
             let (norm, row_largest) = centre_rounded(row, center, &mut centred[j * d..(j + 1) * d]);
             largest = largest.max(row_largest);
-            block[d * len + first + j] = 1.0;
-            block[(d + 1) * len + first + j] = norm as f32;
+            block[d * stride + first + j] = 1.0;
+            block[(d + 1) * stride + first + j] = norm as f32;
             max_norm = max_norm.max(norm);
         }
         for c in 0..d {
-            let column = &mut block[c * len + first..][..count];
+            let column = &mut block[c * stride + first..][..count];
             for (j, slot) in column.iter_mut().enumerate() {
                 *slot = -2.0 * centred[j * d + c];
             }
         }
+    }
+    // The product of any query with a padding row is 0 + ‖q‖² · 0 + 1 · ∞ = ∞, which no
+    // bound is above.
+    for j in len..stride {
+        block[(d + 1) * stride + j] = f32::INFINITY;
     }
     (largest, max_norm)
 }
@@ -455,21 +580,26 @@ impl BruteForceIndex {
             query_norms.push(norm);
         }
         let mut lists: Vec<Candidates> = (0..m).map(|_| Candidates::new(keep)).collect();
-        let mut approx = vec![0.0_f32; m * ROW_TILE];
-        let kernel = ScanKernel::detect();
-
-        for tile_start in (0..n).step_by(ROW_TILE) {
-            let (tile, len) = self.tile(tile_start);
-            let approx = &mut approx[..m * len];
-            product(approx, &augmented, tile, m, len, width);
-            let scan = TileScan {
-                approx,
-                len,
-                tile_start,
-                exclusion,
-                first_query,
-            };
-            scan.offer_to(kernel, &mut lists);
+        match self.pass {
+            CandidatePass::Product => {
+                self.nominate_by_product(&augmented, &mut lists, first_query, exclusion)
+            }
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx2 => {
+                let packed = fused::pack_queries(&augmented, m, width);
+                // SAFETY: the index chose this pass after seeing that the processor has AVX2
+                // and FMA (`CandidatePass::detect`, or a test that checked `runs_here`).
+                unsafe {
+                    fused::nominate(
+                        &self.operand,
+                        width,
+                        &packed,
+                        &mut lists,
+                        first_query,
+                        exclusion,
+                    );
+                }
+            }
         }
 
         lists
@@ -499,6 +629,35 @@ impl BruteForceIndex {
                 exact
             })
             .collect()
+    }
+
+    /// The candidate pass through the blocked product: each tile of rows against the whole
+    /// query block into a buffer, then scanned.
+    fn nominate_by_product(
+        &self,
+        augmented: &[f32],
+        lists: &mut [Candidates],
+        first_query: usize,
+        exclusion: Exclusion,
+    ) {
+        let (n, d) = self.rows.dim();
+        let width = d + 2;
+        let m = lists.len();
+        let mut approx = vec![0.0_f32; m * ROW_TILE];
+        let kernel = ScanKernel::detect();
+        for tile_start in (0..n).step_by(ROW_TILE) {
+            let (tile, len) = self.tile(tile_start);
+            let approx = &mut approx[..m * len];
+            product(approx, augmented, tile, m, len, width);
+            let scan = TileScan {
+                approx,
+                len,
+                tile_start,
+                exclusion,
+                first_query,
+            };
+            scan.offer_to(kernel, lists);
+        }
     }
 
     /// Exact distances to every row; the fallback for ill-separated queries.
@@ -537,6 +696,92 @@ mod tests {
     use super::*;
 
     conformance::shared_tests!(BruteForceIndex::new);
+
+    /// The shared hand-worked tests once more with the pass the machine does not choose
+    /// (skipped where it cannot run), so that both passes are tested on every machine.
+    #[cfg(target_arch = "x86_64")]
+    mod other_pass {
+        use super::super::super::conformance;
+        use super::*;
+
+        fn other() -> CandidatePass {
+            match CandidatePass::detect(3) {
+                CandidatePass::Product if CandidatePass::FusedAvx2.runs_here() => {
+                    CandidatePass::FusedAvx2
+                }
+                _ => CandidatePass::Product,
+            }
+        }
+
+        conformance::shared_tests!(|rows| BruteForceIndex::with_pass(rows, other()));
+    }
+
+    /// Every pass that runs here gives, for every query, the exhaustive double-precision
+    /// answer (indices and distances to the bit), new queries and in-sample, on awkward rows
+    /// (ties, duplicates, far outliers) and on a lattice (many exact ties), at sizes that
+    /// leave partial panels, partial query groups and partial tiles, and at widths on both
+    /// sides of the fused kernel's limit.
+    #[test]
+    fn every_pass_equals_the_exhaustive_search() {
+        let passes = [
+            CandidatePass::Product,
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx2,
+        ];
+        let cases = [
+            (conformance::awkward_rows(1, 1, 1), 1),
+            (conformance::awkward_rows(15, 3, 2), 7),
+            (conformance::awkward_rows(17, 2, 3), 13),
+            (conformance::awkward_rows(300, 5, 4), 50),
+            (conformance::awkward_rows(600, 34, 5), 37),
+            (conformance::gaussian_rows(257, 256, 6), 9),
+            (conformance::gaussian_rows(40, 400, 7), 5),
+            (conformance::lattice_rows(5, 3, 8), 19),
+        ];
+        for pass in passes.into_iter().filter(|p| p.runs_here()) {
+            for (rows, m) in &cases {
+                let n = rows.nrows();
+                let k = 4.min(n - 1).max(1);
+                let index = BruteForceIndex::with_pass(rows.clone(), pass);
+                let queries = conformance::gaussian_rows(*m, rows.ncols(), n as u64);
+                for (exclusion, queries) in [
+                    (Exclusion::None, queries.view()),
+                    (Exclusion::SameIndex, rows.view()),
+                ] {
+                    if exclusion == Exclusion::SameIndex && n < 2 {
+                        continue;
+                    }
+                    let got = index.k_nearest(queries, k, exclusion).unwrap();
+                    for (qi, query) in queries.outer_iter().enumerate() {
+                        let want = exhaustive(rows.view(), query, qi, k, exclusion);
+                        let indices: Vec<usize> = want.iter().map(|&(_, i)| i).collect();
+                        let distances: Vec<f64> = want.iter().map(|&(d, _)| d.sqrt()).collect();
+                        let context = format!("{pass:?}, {exclusion:?}, n {n}, query {qi}");
+                        assert_eq!(got.indices.row(qi).to_vec(), indices, "{context}");
+                        assert_eq!(got.distances.row(qi).to_vec(), distances, "{context}");
+                    }
+                }
+            }
+        }
+    }
+
+    /// A padding row of the fused layout sits at infinite distance: its column is zero but
+    /// for an infinite norm.
+    #[cfg(target_arch = "x86_64")]
+    #[test]
+    fn padding_rows_are_infinitely_far() {
+        let rows = conformance::gaussian_rows(3, 2, 9);
+        let index = BruteForceIndex::with_pass(rows, CandidatePass::FusedAvx2);
+        let values: &[f32] = bytemuck::cast_slice(&index.operand);
+        assert_eq!(values.len(), 4 * LINE_LANES);
+        for j in 3..LINE_LANES {
+            let column: Vec<f32> = (0..4).map(|c| values[c * LINE_LANES + j]).collect();
+            assert_eq!(column, vec![0.0, 0.0, 0.0, f32::INFINITY]);
+        }
+        for j in 0..3 {
+            assert_eq!(values[2 * LINE_LANES + j], 1.0);
+        }
+    }
 
     /// The vector screens answer as the portable comparisons do, on rows of every length
     /// from 0 to 70 (whole blocks and remainders) with entries equal to, just below and

@@ -11,6 +11,8 @@ mod approximate;
 mod brute_force;
 #[cfg(test)]
 mod conformance;
+#[cfg(target_arch = "x86_64")]
+mod fused;
 mod lof;
 mod reference;
 mod tree;

@@ -239,7 +239,10 @@ impl Profile {
         };
         let file = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
         let length = file.metadata().map_err(|e| Error::io(path, e))?.len();
-        let reader = std::io::BufReader::with_capacity(PIECE_BYTES, file);
+        // A buffer well under a piece: the preamble and header go through it, while the
+        // sections' pieces, larger than the buffer, bypass it and go straight from the file
+        // into their storage (one copy, not two).
+        let reader = std::io::BufReader::with_capacity(PIECE_BYTES / 16, file);
         read_profile(reader, length, scope).map_err(|failure| match failure {
             ReadFailure::Io(e) => Error::io(path, e),
             ReadFailure::Fault(f) => fault(f),
