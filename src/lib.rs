@@ -26,6 +26,7 @@ pub mod embedding;
 pub mod error;
 pub mod groups;
 pub mod linalg;
+mod memory;
 pub mod models;
 pub mod neighbours;
 pub mod output;

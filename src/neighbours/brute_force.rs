@@ -58,28 +58,33 @@ unsafe impl bytemuck::Pod for Line {}
 /// what the processor has.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub(crate) enum CandidatePass {
-    /// Products of a query block and a tile of rows in the `gemm` crate's blocked kernels
-    /// (AVX-512 where the processor has it), written to a buffer and then scanned. The
-    /// operand is stored tile after tile: for the tile of rows `t·ROW_TILE..`, a
-    /// `(dim + 2) x tile_len` row-major block.
+    /// Products of a query block and a tile of rows in the `gemm` crate's blocked kernels,
+    /// written to a buffer and then scanned. The operand is stored tile after tile: for the
+    /// tile of rows `t·ROW_TILE..`, a `(dim + 2) x tile_len` row-major block.
     Product,
     /// Kilter's own AVX2 micro-kernel, which screens each 6 x 16 block of products while it
     /// is still in registers (see `fused`). The operand is stored in panels of 16 rows,
     /// `dim + 2` lines each, the last panel padded with rows at infinite distance.
     #[cfg(target_arch = "x86_64")]
     FusedAvx2,
+    /// The same with AVX-512 registers and 12 x 32 blocks, on the same panels.
+    #[cfg(target_arch = "x86_64")]
+    FusedAvx512,
 }
 
 impl CandidatePass {
-    /// The fused kernel on AVX2 machines without AVX-512 for operands that fit it; the
-    /// blocked product elsewhere, whose AVX-512 kernels beat AVX2 code where they run.
+    /// The widest fused kernel the processor has, for operands whose panels fit its
+    /// first-level cache; the blocked product elsewhere (other processors, wider data).
     fn detect(width: usize) -> Self {
         #[cfg(target_arch = "x86_64")]
         {
-            if !std::arch::is_x86_feature_detected!("avx512f")
-                && std::arch::is_x86_feature_detected!("avx2")
+            if std::arch::is_x86_feature_detected!("avx512f") {
+                if width <= fused::AVX512_MAX_WIDTH {
+                    return CandidatePass::FusedAvx512;
+                }
+            } else if std::arch::is_x86_feature_detected!("avx2")
                 && std::arch::is_x86_feature_detected!("fma")
-                && width <= fused::MAX_WIDTH
+                && width <= fused::AVX2_MAX_WIDTH
             {
                 return CandidatePass::FusedAvx2;
             }
@@ -98,6 +103,8 @@ impl CandidatePass {
                 std::arch::is_x86_feature_detected!("avx2")
                     && std::arch::is_x86_feature_detected!("fma")
             }
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx512 => std::arch::is_x86_feature_detected!("avx512f"),
         }
     }
 }
@@ -140,12 +147,12 @@ impl BruteForceIndex {
         let (block_rows, stored) = match pass {
             CandidatePass::Product => (ROW_TILE, width * n),
             #[cfg(target_arch = "x86_64")]
-            CandidatePass::FusedAvx2 => (
+            CandidatePass::FusedAvx2 | CandidatePass::FusedAvx512 => (
                 fused::PANEL_ROWS,
                 width * n.next_multiple_of(fused::PANEL_ROWS),
             ),
         };
-        let mut operand = vec![Line::default(); stored.div_ceil(LINE_LANES)];
+        let mut operand: Vec<Line> = crate::memory::zeroed_vec(stored.div_ceil(LINE_LANES));
         let values: &mut [f32] = &mut bytemuck::cast_slice_mut(&mut operand)[..stored];
         // Blocks are independent: filled in parallel, each reporting its largest centred
         // magnitude and norm.
@@ -586,18 +593,29 @@ impl BruteForceIndex {
             }
             #[cfg(target_arch = "x86_64")]
             CandidatePass::FusedAvx2 => {
-                let packed = fused::pack_queries(&augmented, m, width);
+                let packed = fused::pack_queries(&augmented, m, width, fused::AVX2_GROUP);
+                let mut targets = fused::Targets {
+                    lists: &mut lists,
+                    first_query,
+                    exclusion,
+                };
                 // SAFETY: the index chose this pass after seeing that the processor has AVX2
                 // and FMA (`CandidatePass::detect`, or a test that checked `runs_here`).
                 unsafe {
-                    fused::nominate(
-                        &self.operand,
-                        width,
-                        &packed,
-                        &mut lists,
-                        first_query,
-                        exclusion,
-                    );
+                    fused::nominate_avx2(&self.operand, width, &packed, &mut targets);
+                }
+            }
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx512 => {
+                let packed = fused::pack_queries(&augmented, m, width, fused::AVX512_GROUP);
+                let mut targets = fused::Targets {
+                    lists: &mut lists,
+                    first_query,
+                    exclusion,
+                };
+                // SAFETY: as above, for AVX-512F.
+                unsafe {
+                    fused::nominate_avx512(&self.operand, width, &packed, &mut targets);
                 }
             }
         }
@@ -697,23 +715,36 @@ mod tests {
 
     conformance::shared_tests!(BruteForceIndex::new);
 
-    /// The shared hand-worked tests once more with the pass the machine does not choose
-    /// (skipped where it cannot run), so that both passes are tested on every machine.
-    #[cfg(target_arch = "x86_64")]
-    mod other_pass {
+    /// The shared hand-worked tests once more with each pass forced, so that every pass the
+    /// machine can run is tested whichever one it chooses (a pass it cannot run gives way to
+    /// the blocked product).
+    fn forced(pass: CandidatePass) -> impl Fn(Array2<f64>) -> BruteForceIndex {
+        let pass = if pass.runs_here() {
+            pass
+        } else {
+            CandidatePass::Product
+        };
+        move |rows| BruteForceIndex::with_pass(rows, pass)
+    }
+
+    mod product_pass {
         use super::super::super::conformance;
         use super::*;
+        conformance::shared_tests!(forced(CandidatePass::Product));
+    }
 
-        fn other() -> CandidatePass {
-            match CandidatePass::detect(3) {
-                CandidatePass::Product if CandidatePass::FusedAvx2.runs_here() => {
-                    CandidatePass::FusedAvx2
-                }
-                _ => CandidatePass::Product,
-            }
-        }
+    #[cfg(target_arch = "x86_64")]
+    mod avx2_pass {
+        use super::super::super::conformance;
+        use super::*;
+        conformance::shared_tests!(forced(CandidatePass::FusedAvx2));
+    }
 
-        conformance::shared_tests!(|rows| BruteForceIndex::with_pass(rows, other()));
+    #[cfg(target_arch = "x86_64")]
+    mod avx512_pass {
+        use super::super::super::conformance;
+        use super::*;
+        conformance::shared_tests!(forced(CandidatePass::FusedAvx512));
     }
 
     /// Every pass that runs here gives, for every query, the exhaustive double-precision
@@ -727,6 +758,8 @@ mod tests {
             CandidatePass::Product,
             #[cfg(target_arch = "x86_64")]
             CandidatePass::FusedAvx2,
+            #[cfg(target_arch = "x86_64")]
+            CandidatePass::FusedAvx512,
         ];
         let cases = [
             (conformance::awkward_rows(1, 1, 1), 1),

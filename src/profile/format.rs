@@ -348,7 +348,7 @@ fn read_profile(
         if keep {
             // Read straight into the values' storage, a piece at a time so that the checksum
             // reads each piece while it is still in cache; the file is little-endian.
-            let mut data = vec![0.0_f64; section.len];
+            let mut data: Vec<f64> = crate::memory::zeroed_vec(section.len);
             for piece in bytemuck::cast_slice_mut::<f64, u8>(&mut data).chunks_mut(PIECE_BYTES) {
                 read_exact(&mut source, piece)?;
                 hasher.update(piece);
