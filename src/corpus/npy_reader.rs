@@ -13,6 +13,8 @@ use crate::error::{CellFault, ColumnRef, Error, Result};
 
 /// Bytes of data read per chunk.
 const BLOCK_BYTES: usize = 16 << 20;
+/// Values read per step.
+const PIECE_VALUES: usize = 1 << 17;
 const MAGIC: &[u8] = b"\x93NUMPY";
 /// More features than any model kilter audits takes; a header claiming more is damaged.
 const MAX_COLUMNS: usize = 1 << 24;
@@ -142,42 +144,69 @@ impl NpyChunks {
     /// file ended first, and only the whole values before its end are returned).
     fn read_values(&mut self, count: usize) -> Result<(Vec<f64>, bool)> {
         let size = self.header.dtype.size();
-        // Grown as the data arrives, never sized from the header alone: a header may claim
-        // far more than the file holds.
-        let want = (count * size) as u64;
-        let mut bytes = Vec::new();
-        let mut piece = vec![0u8; 1 << 20];
-        while (bytes.len() as u64) < want {
-            let step = (want - bytes.len() as u64).min(piece.len() as u64) as usize;
-            let read = self
-                .source
-                .read(&mut piece[..step])
-                .map_err(|e| Error::io(&self.path, e))?;
-            if read == 0 {
-                break;
-            }
-            bytes.extend_from_slice(&piece[..read]);
-        }
-        let complete = bytes.len() as u64 == want;
-        let values = match self.header.dtype {
-            Dtype::F8 => bytes
-                .chunks_exact(8)
-                .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes")))
-                .collect(),
-            Dtype::F4 => bytes
-                .chunks_exact(4)
-                .map(|b| f64::from(f32::from_le_bytes(b.try_into().expect("4 bytes"))))
-                .collect(),
-            Dtype::BigF8 => bytes
-                .chunks_exact(8)
-                .map(|b| f64::from_be_bytes(b.try_into().expect("8 bytes")))
-                .collect(),
-            Dtype::BigF4 => bytes
-                .chunks_exact(4)
-                .map(|b| f64::from(f32::from_be_bytes(b.try_into().expect("4 bytes"))))
-                .collect(),
+        // Room is made as the data arrives, a piece at a time, never from the header alone
+        // (a header may claim far more than the file holds); a block of rows is at most
+        // `block_bytes` long, so that much is reserved up front.
+        let mut values: Vec<f64> = Vec::with_capacity(count.min(self.block_bytes / size + 1));
+        let direct = self.header.dtype == Dtype::F8 && cfg!(target_endian = "little");
+        let mut piece = if direct {
+            Vec::new()
+        } else {
+            vec![0u8; PIECE_VALUES * size]
         };
-        Ok((values, complete))
+        while values.len() < count {
+            let step = (count - values.len()).min(PIECE_VALUES);
+            let before = values.len();
+            let got =
+                if direct {
+                    // Little-endian `f64` on a little-endian machine: the file's bytes are the
+                    // values, read straight into their storage.
+                    values.resize(before + step, 0.0);
+                    let read = self.read_up_to(bytemuck::cast_slice_mut(&mut values[before..]))?;
+                    values.truncate(before + read / size);
+                    read
+                } else {
+                    let read = self.read_up_to(&mut piece[..step * size])?;
+                    let bytes = &piece[..read / size * size];
+                    match self.header.dtype {
+                        Dtype::F8 => values.extend(
+                            bytes
+                                .chunks_exact(8)
+                                .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes"))),
+                        ),
+                        Dtype::F4 => values.extend(bytes.chunks_exact(4).map(|b| {
+                            f64::from(f32::from_le_bytes(b.try_into().expect("4 bytes")))
+                        })),
+                        Dtype::BigF8 => values.extend(
+                            bytes
+                                .chunks_exact(8)
+                                .map(|b| f64::from_be_bytes(b.try_into().expect("8 bytes"))),
+                        ),
+                        Dtype::BigF4 => values.extend(bytes.chunks_exact(4).map(|b| {
+                            f64::from(f32::from_be_bytes(b.try_into().expect("4 bytes")))
+                        })),
+                    }
+                    read
+                };
+            if got < step * size {
+                return Ok((values, false));
+            }
+        }
+        Ok((values, true))
+    }
+
+    /// Fills as much of `buffer` as the source holds; fewer bytes only at its end.
+    fn read_up_to(&mut self, buffer: &mut [u8]) -> Result<usize> {
+        let mut filled = 0;
+        while filled < buffer.len() {
+            match self.source.read(&mut buffer[filled..]) {
+                Ok(0) => break,
+                Ok(read) => filled += read,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(Error::io(&self.path, e)),
+            }
+        }
+        Ok(filled)
     }
 
     /// After the last value the file must end.
@@ -449,6 +478,66 @@ mod tests {
             read_in_blocks(npy("<f8", true, (10, 3), &by_column), 24).unwrap(),
             values
         );
+    }
+
+    /// A source that hands out at most 1,000 bytes per read, as pipes and some file
+    /// systems do.
+    struct Trickle(std::io::Cursor<Vec<u8>>);
+
+    impl Read for Trickle {
+        fn read(&mut self, buffer: &mut [u8]) -> std::io::Result<usize> {
+            let n = buffer.len().min(1000);
+            self.0.read(&mut buffer[..n])
+        }
+    }
+
+    /// Data longer than one read step, in every byte order and width, from a source that
+    /// gives short reads: every value comes back; cut short mid-value, the file is refused.
+    #[test]
+    fn values_across_read_steps_and_short_reads() {
+        let rows = 2 * PIECE_VALUES / 3 + 5;
+        let values: Vec<f64> = (0..rows * 3)
+            .map(|v| (v % 1024) as f64 * 0.5 - 7.0)
+            .collect();
+        let encodings: [(&str, Vec<u8>); 4] = [
+            ("<f8", values.iter().flat_map(|v| v.to_le_bytes()).collect()),
+            (">f8", values.iter().flat_map(|v| v.to_be_bytes()).collect()),
+            (
+                "<f4",
+                values
+                    .iter()
+                    .flat_map(|v| (*v as f32).to_le_bytes())
+                    .collect(),
+            ),
+            (
+                ">f4",
+                values
+                    .iter()
+                    .flat_map(|v| (*v as f32).to_be_bytes())
+                    .collect(),
+            ),
+        ];
+        let read = |bytes: Vec<u8>| -> Result<Vec<f64>> {
+            let source = Box::new(Trickle(std::io::Cursor::new(bytes)));
+            let mut chunks = NpyChunks::new(Path::new("t.npy"), source)?;
+            let mut out = Vec::new();
+            while let Some(chunk) = chunks.next_chunk()? {
+                out.extend(chunk);
+            }
+            Ok(out)
+        };
+        for (descr, data) in encodings {
+            assert_eq!(
+                read(npy(descr, false, (rows, 3), &data)).unwrap(),
+                values,
+                "{descr}"
+            );
+            let cut = &data[..data.len() - 3];
+            assert!(
+                matches!(read(npy(descr, false, (rows, 3), cut)), Err(Error::Npy { detail, .. }) if detail.contains("truncated")),
+                "{descr}"
+            );
+        }
     }
 
     #[test]
