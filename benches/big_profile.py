@@ -12,7 +12,8 @@ its scores are not meaningful and are not checked.
         --out /tmp/big.kprofile
 
 Needs numpy. Format: src/profile/format.rs (signature, u32 version, u64 header length,
-JSON header, little-endian f64 sections in the header's order, CRC-32 of all before it).
+JSON header, little-endian f64 sections in the header's order, the CRC-32 of the
+feature_rows section, then the CRC-32 of every byte before it but that section's).
 """
 import argparse
 import json
@@ -74,22 +75,23 @@ def main():
     for s in header["sections"]:
         s["len"] = lengths.get(s["name"], None) or len(sections[s["name"]])
     header_bytes = json.dumps(header).encode()
-    crc = 0
+    crc = {"main": 0, "feature_rows": 0}
     with open(args.out + ".tmp", "wb") as out:
-        def put(b):
-            nonlocal crc
-            crc = zlib.crc32(b, crc)
+        def put(b, into="main"):
+            crc[into] = zlib.crc32(b, crc[into])
             out.write(b)
         put(SIGNATURE + struct.pack("<IQ", version, len(header_bytes)) + header_bytes)
         for s in header["sections"]:
+            into = "feature_rows" if s["name"] == "feature_rows" else "main"
             if sections[s["name"]] is None:
                 width = d if s["name"] == "index_rows" else p
                 for start in range(0, n, 65536):
                     rows = rng.standard_normal((min(65536, n - start), width))
-                    put(rows.astype("<f8").tobytes())
+                    put(rows.astype("<f8").tobytes(), into)
             else:
-                put(np.asarray(sections[s["name"]], dtype="<f8").tobytes())
-        out.write(struct.pack("<I", crc & 0xFFFFFFFF))
+                put(np.asarray(sections[s["name"]], dtype="<f8").tobytes(), into)
+        put(struct.pack("<I", crc["feature_rows"] & 0xFFFFFFFF))
+        out.write(struct.pack("<I", crc["main"] & 0xFFFFFFFF))
     os.replace(args.out + ".tmp", args.out)
     print(f"wrote {args.out}: {n} x {d} index rows, {os.path.getsize(args.out) / 1e6:.0f} MB")
     if args.queries:

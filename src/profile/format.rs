@@ -1,7 +1,7 @@
 //! The profile file: a signature, a format version, a JSON header with the settings and
 //! the small fitted statistics, binary little-endian `f64` sections for the large arrays
 //! (the indexed rows, LOF state, calibration scores, the raw fitted rows and their
-//! Gaussian for the replacement samplers), and a CRC-32 over all of it.
+//! Gaussian for the replacement samplers), and two CRC-32 checksums.
 //!
 //! ```text
 //! 0   12 bytes  signature  \x89 K L T P R O F \r \n \x1a \n
@@ -10,14 +10,17 @@
 //! 24  H bytes   header (UTF-8 JSON)
 //! ..  f64 LE    sections, in the order and lengths the header lists
 //! ..  G bytes   the approximate index's graph (`index_graph_bytes`; 0 for exact indexes)
-//! ..  u32 LE    CRC-32 (IEEE) of every byte before it
+//! ..  u32 LE    CRC-32 (IEEE) of the `feature_rows` section
+//! ..  u32 LE    CRC-32 (IEEE) of every byte before it but the `feature_rows` section's
 //! ```
 //!
 //! The binary sections keep a million-row profile loading in well under a second; the
-//! signature's `\r\n` and `\x1a` catch a file mangled by text-mode transfers; the checksum
-//! catches truncation and edits.
+//! signature's `\r\n` and `\x1a` catch a file mangled by text-mode transfers; the checksums
+//! catch truncation and edits. The raw fitted rows have a checksum of their own so that
+//! `score`, which does not use them, can seek past them instead of reading them: they are
+//! as large as the indexed rows. Everything a command uses is checked before it is used.
 
-use std::io::{Read, Write};
+use std::io::{Read, Seek, SeekFrom, Write};
 use std::path::Path;
 
 use ndarray::{Array1, Array2};
@@ -36,10 +39,12 @@ use crate::stats::{CalibrationScores, CovarianceEstimate, MahalanobisModel};
 /// The format's name, recorded in the header.
 pub const FORMAT_NAME: &str = "kilter-profile";
 /// The format version this build writes and reads.
-pub const FORMAT_VERSION: u32 = 3;
+pub const FORMAT_VERSION: u32 = 4;
 
 const SIGNATURE: &[u8; 12] = b"\x89KLTPROF\r\n\x1a\n";
 const PREAMBLE: usize = 12 + 4 + 8;
+/// The two checksums at the end.
+const TRAILER: usize = 4 + 4;
 
 #[derive(Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -82,7 +87,7 @@ const SECTION_NAMES: [&str; 8] = [
 
 /// What a command needs of a profile. Scoring needs neither the raw fitted rows nor their
 /// Gaussian (the replacement samplers' distribution), which are as large as the index, so
-/// `score` skips that section and holds about one and a half times the indexed rows.
+/// `score` seeks past that section unread and holds about one and a half times the indexed rows.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ProfileScope {
     /// Everything: `audit`, `baseline`.
@@ -94,16 +99,27 @@ pub enum ProfileScope {
 /// Bytes read or written per step of a section.
 const PIECE_BYTES: usize = 1 << 20;
 
-/// A writer that keeps the CRC-32 of everything written through it.
+/// The section with a checksum of its own, which `score` skips.
+const SKIPPABLE_SECTION: &str = "feature_rows";
+
+/// A writer that keeps the CRC-32 of everything written through it: of the skippable
+/// section while `aside` is set, of everything else otherwise.
 struct HashingWriter<W: Write> {
     inner: W,
     hasher: crc32fast::Hasher,
+    aside_hasher: crc32fast::Hasher,
+    aside: bool,
 }
 
 impl<W: Write> Write for HashingWriter<W> {
     fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
         let n = self.inner.write(buf)?;
-        self.hasher.update(&buf[..n]);
+        let hasher = if self.aside {
+            &mut self.aside_hasher
+        } else {
+            &mut self.hasher
+        };
+        hasher.update(&buf[..n]);
         Ok(n)
     }
 
@@ -199,13 +215,16 @@ impl Profile {
         let mut out = HashingWriter {
             inner: out,
             hasher: crc32fast::Hasher::new(),
+            aside_hasher: crc32fast::Hasher::new(),
+            aside: false,
         };
         out.write_all(SIGNATURE)?;
         out.write_all(&FORMAT_VERSION.to_le_bytes())?;
         out.write_all(&(header.len() as u64).to_le_bytes())?;
         out.write_all(&header)?;
         let mut piece = Vec::with_capacity(PIECE_BYTES);
-        for section in sections {
+        for (section, name) in sections.into_iter().zip(SECTION_NAMES) {
+            out.aside = name == SKIPPABLE_SECTION;
             for values in section.chunks(PIECE_BYTES / 8) {
                 piece.clear();
                 for v in values {
@@ -214,7 +233,10 @@ impl Profile {
                 out.write_all(&piece)?;
             }
         }
+        out.aside = false;
         out.write_all(&graph)?;
+        let aside_crc = out.aside_hasher.clone().finalize();
+        out.write_all(&aside_crc.to_le_bytes())?;
         let crc = out.hasher.clone().finalize();
         out.inner.write_all(&crc.to_le_bytes())?;
         out.flush()
@@ -251,7 +273,8 @@ impl Profile {
 
     /// Parses and validates profile bytes.
     pub fn from_bytes(bytes: &[u8]) -> std::result::Result<Profile, ProfileFault> {
-        read_profile(bytes, bytes.len() as u64, ProfileScope::Complete).map_err(|failure| {
+        let source = std::io::Cursor::new(bytes);
+        read_profile(source, bytes.len() as u64, ProfileScope::Complete).map_err(|failure| {
             match failure {
                 ReadFailure::Io(_) => ProfileFault::Truncated,
                 ReadFailure::Fault(f) => f,
@@ -260,10 +283,65 @@ impl Profile {
     }
 }
 
+/// Recomputes the two checksums at the end of profile bytes in place, for tools that edit a
+/// profile on purpose (tests of what lies behind the checksums, the fuzzer). Returns false,
+/// changing nothing, where the layout cannot be followed that far: too short, a header that
+/// is not JSON with a list of sections, or sections that do not fit.
+pub fn reseal(bytes: &mut [u8]) -> bool {
+    let Some(body) = bytes.len().checked_sub(TRAILER).filter(|&b| b >= PREAMBLE) else {
+        return false;
+    };
+    let header_len = u64::from_le_bytes(bytes[16..24].try_into().expect("8 bytes"));
+    let Some(header_end) = usize::try_from(header_len)
+        .ok()
+        .and_then(|h| h.checked_add(PREAMBLE))
+        .filter(|&end| end <= body)
+    else {
+        return false;
+    };
+    let Ok(header) = serde_json::from_slice::<serde_json::Value>(&bytes[PREAMBLE..header_end])
+    else {
+        return false;
+    };
+    let Some(sections) = header.get("sections").and_then(|s| s.as_array()) else {
+        return false;
+    };
+    // The skippable section's place: after the lengths of the sections before it.
+    let mut start = header_end;
+    let mut span = None;
+    for section in sections {
+        let Some(len) = section.get("len").and_then(|l| l.as_u64()) else {
+            return false;
+        };
+        let Some(end) = usize::try_from(len)
+            .ok()
+            .and_then(|l| l.checked_mul(8))
+            .and_then(|b| b.checked_add(start))
+        else {
+            return false;
+        };
+        if section.get("name").and_then(|n| n.as_str()) == Some(SKIPPABLE_SECTION) {
+            span = Some((start, end));
+            break;
+        }
+        start = end;
+    }
+    let Some((start, end)) = span.filter(|&(_, end)| end <= body) else {
+        return false;
+    };
+    let aside = crc32fast::hash(&bytes[start..end]);
+    bytes[body..body + 4].copy_from_slice(&aside.to_le_bytes());
+    let mut hasher = crc32fast::Hasher::new();
+    hasher.update(&bytes[..start]);
+    hasher.update(&bytes[end..body + 4]);
+    bytes[body + 4..].copy_from_slice(&hasher.finalize().to_le_bytes());
+    true
+}
+
 /// Reads a profile of `length` bytes from `source`. Every length the header declares is
 /// checked against `length` before anything that large is allocated.
 fn read_profile(
-    mut source: impl Read,
+    mut source: impl Read + Seek,
     length: u64,
     scope: ProfileScope,
 ) -> std::result::Result<Profile, ReadFailure> {
@@ -275,7 +353,7 @@ fn read_profile(
     if &preamble[..SIGNATURE.len()] != SIGNATURE {
         return Err(ProfileFault::NotAProfile.into());
     }
-    if length < (PREAMBLE + 4) as u64 {
+    if length < (PREAMBLE + TRAILER) as u64 {
         return Err(ProfileFault::Truncated.into());
     }
     read_exact(&mut source, &mut preamble[SIGNATURE.len()..])?;
@@ -288,11 +366,11 @@ fn read_profile(
         .into());
     }
     let header_len = u64::from_le_bytes(preamble[16..24].try_into().expect("8 bytes"));
-    // `length >= PREAMBLE + 4` here; `end + 4` could overflow for a header length near
-    // the largest integer, `length - 4` cannot.
+    // `length >= PREAMBLE + TRAILER` here; `end + TRAILER` could overflow for a header
+    // length near the largest integer, `length - TRAILER` cannot.
     let header_end = header_len
         .checked_add(PREAMBLE as u64)
-        .filter(|&end| end <= length - 4)
+        .filter(|&end| end <= length - TRAILER as u64)
         .ok_or(ProfileFault::Truncated)?;
     let mut header_bytes = vec![0u8; (header_end - PREAMBLE as u64) as usize];
     read_exact(&mut source, &mut header_bytes)?;
@@ -322,7 +400,7 @@ fn read_profile(
     let expected_len = header_end
         .checked_add(body)
         .and_then(|v| v.checked_add(header.index_graph_bytes as u64))
-        .and_then(|v| v.checked_add(4))
+        .and_then(|v| v.checked_add(TRAILER as u64))
         .ok_or(ProfileFault::Truncated)?;
     if length < expected_len {
         return Err(ProfileFault::Truncated.into());
@@ -335,7 +413,7 @@ fn read_profile(
         .into());
     }
     let mut sections = Vec::with_capacity(SECTION_NAMES.len());
-    let mut piece = vec![0u8; PIECE_BYTES];
+    let mut aside_hasher = crc32fast::Hasher::new();
     for (section, expected) in header.sections.iter().zip(SECTION_NAMES) {
         if section.name != expected {
             return Err(ProfileFault::Inconsistent(format!(
@@ -344,38 +422,46 @@ fn read_profile(
             ))
             .into());
         }
-        let keep = scope == ProfileScope::Complete || expected != "feature_rows";
-        if keep {
-            // Read straight into the values' storage, a piece at a time so that the checksum
-            // reads each piece while it is still in cache; the file is little-endian.
-            let mut data: Vec<f64> = crate::memory::zeroed_vec(section.len);
-            for piece in bytemuck::cast_slice_mut::<f64, u8>(&mut data).chunks_mut(PIECE_BYTES) {
-                read_exact(&mut source, piece)?;
-                hasher.update(piece);
-            }
-            if cfg!(target_endian = "big") {
-                for v in &mut data {
-                    *v = f64::from_bits(u64::from_le(v.to_bits()));
-                }
-            }
-            sections.push(data);
-        } else {
-            let mut left = section.len * 8;
-            while left > 0 {
-                let step = left.min(PIECE_BYTES);
-                read_exact(&mut source, &mut piece[..step])?;
-                hasher.update(&piece[..step]);
-                left -= step;
-            }
+        let skippable = expected == SKIPPABLE_SECTION;
+        if skippable && scope == ProfileScope::Scoring {
+            // The file's length was checked against the header's: the section is there.
+            let bytes = i64::try_from(section.len * 8).map_err(|_| ProfileFault::Truncated)?;
+            source
+                .seek(SeekFrom::Current(bytes))
+                .map_err(ReadFailure::Io)?;
             sections.push(Vec::new());
+            continue;
         }
+        // Read straight into the values' storage, a piece at a time so that the checksum
+        // reads each piece while it is still in cache; the file is little-endian.
+        let hasher = if skippable {
+            &mut aside_hasher
+        } else {
+            &mut hasher
+        };
+        let mut data: Vec<f64> = crate::memory::zeroed_vec(section.len);
+        for piece in bytemuck::cast_slice_mut::<f64, u8>(&mut data).chunks_mut(PIECE_BYTES) {
+            read_exact(&mut source, piece)?;
+            hasher.update(piece);
+        }
+        if cfg!(target_endian = "big") {
+            for v in &mut data {
+                *v = f64::from_bits(u64::from_le(v.to_bits()));
+            }
+        }
+        sections.push(data);
     }
     let mut graph = vec![0u8; header.index_graph_bytes];
     read_exact(&mut source, &mut graph)?;
     hasher.update(&graph);
-    let mut stored = [0u8; 4];
-    read_exact(&mut source, &mut stored)?;
-    if hasher.finalize() != u32::from_le_bytes(stored) {
+    let mut trailer = [0u8; TRAILER];
+    read_exact(&mut source, &mut trailer)?;
+    hasher.update(&trailer[..4]);
+    let stored_aside = u32::from_le_bytes(trailer[..4].try_into().expect("4 bytes"));
+    let stored = u32::from_le_bytes(trailer[4..].try_into().expect("4 bytes"));
+    if hasher.finalize() != stored
+        || (scope == ProfileScope::Complete && aside_hasher.finalize() != stored_aside)
+    {
         return Err(ProfileFault::Checksum.into());
     }
     if header.format != FORMAT_NAME {
@@ -530,6 +616,56 @@ fn build(
 mod tests {
     use super::*;
 
+    /// `body` (preamble, header, sections, graph) with the two checksums of the layout
+    /// appended by [`reseal`].
+    fn sealed(mut body: Vec<u8>) -> Vec<u8> {
+        body.extend_from_slice(&[0; TRAILER]);
+        assert!(reseal(&mut body));
+        body
+    }
+
+    /// The raw rows are checked when they are read and skipped unread when they are not
+    /// needed: an edit there fails a complete load and not a scoring one, while an edit
+    /// anywhere else fails both.
+    #[test]
+    fn the_raw_rows_are_checked_when_read() {
+        let seed = &include_bytes!("../../fuzz/seeds/profile_bytes/standardize_lw_k3_as_is")[1..];
+        let header_len = u64::from_le_bytes(seed[16..24].try_into().unwrap()) as usize;
+        let header: Header =
+            serde_json::from_slice(&seed[PREAMBLE..PREAMBLE + header_len]).unwrap();
+        let before: usize = header
+            .sections
+            .iter()
+            .take_while(|s| s.name != SKIPPABLE_SECTION)
+            .map(|s| s.len * 8)
+            .sum();
+        let in_rows = PREAMBLE + header_len + before + 3;
+        let in_index = PREAMBLE + header_len + 3;
+        let load = |bytes: &[u8], scope| {
+            let length = bytes.len() as u64;
+            read_profile(std::io::Cursor::new(bytes), length, scope)
+        };
+        assert!(load(seed, ProfileScope::Scoring).is_ok());
+        assert!(load(seed, ProfileScope::Complete).is_ok());
+        let mut edited = seed.to_vec();
+        edited[in_rows] ^= 0x08;
+        assert!(load(&edited, ProfileScope::Scoring).is_ok());
+        assert!(matches!(
+            load(&edited, ProfileScope::Complete),
+            Err(ReadFailure::Fault(ProfileFault::Checksum))
+        ));
+        let mut edited = seed.to_vec();
+        edited[in_index] ^= 0x08;
+        for scope in [ProfileScope::Scoring, ProfileScope::Complete] {
+            assert!(matches!(
+                load(&edited, scope),
+                Err(ReadFailure::Fault(ProfileFault::Checksum))
+            ));
+        }
+        // The helper above seals as the writer does.
+        assert_eq!(sealed(seed[..seed.len() - TRAILER].to_vec()), seed);
+    }
+
     /// A preamble in this file's layout (signature, version, header length) over `rest`.
     fn preamble(header_len: u64, rest: &[u8]) -> Vec<u8> {
         let mut out = SIGNATURE.to_vec();
@@ -590,9 +726,8 @@ mod tests {
         header["fitted_rows"] = serde_json::json!(1u64 << 62);
         let header = serde_json::to_vec(&header).unwrap();
         let mut bytes = preamble(header.len() as u64, &header);
-        bytes.extend_from_slice(&seed[header_end..seed.len() - 4]);
-        let crc = crc32fast::hash(&bytes);
-        bytes.extend_from_slice(&crc.to_le_bytes());
+        bytes.extend_from_slice(&seed[header_end..seed.len() - TRAILER]);
+        let bytes = sealed(bytes);
         assert!(matches!(
             Profile::from_bytes(&bytes),
             Err(ProfileFault::Inconsistent(_))

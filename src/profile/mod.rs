@@ -29,7 +29,7 @@ use crate::stats::{
     MahalanobisModel,
 };
 
-pub use format::{ProfileScope, FORMAT_NAME, FORMAT_VERSION};
+pub use format::{reseal, ProfileScope, FORMAT_NAME, FORMAT_VERSION};
 
 /// The settings of `kilter fit`, validated.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
