@@ -98,9 +98,10 @@ pub struct FitArgs {
     /// Seed of the holdout split (and of the approximate index's graph).
     #[arg(long, default_value_t = 0, value_name = "S")]
     pub seed: u64,
-    /// Neighbour index: auto (exact k-d tree up to 8 embedded dimensions, exact brute
-    /// force above), exact, tree, or approximate (a graph search for corpora of millions
-    /// of rows; its recall is measured and printed).
+    /// Neighbour index: auto (exact k-d tree up to 5 embedded dimensions on processors
+    /// with AVX-512, up to 8 elsewhere, exact brute force above; the answers are the same),
+    /// exact, tree, or approximate (a graph search for corpora of millions of rows; its
+    /// recall is measured and printed).
     #[arg(long, default_value = "auto", value_name = "KIND")]
     pub index: String,
     #[command(flatten)]

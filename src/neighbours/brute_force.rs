@@ -94,7 +94,7 @@ impl CandidatePass {
     }
 
     /// Whether this machine can run the pass.
-    #[cfg(test)]
+    #[cfg_attr(not(target_arch = "x86_64"), allow(dead_code))]
     fn runs_here(self) -> bool {
         match self {
             CandidatePass::Product => true,
@@ -128,6 +128,19 @@ impl BruteForceIndex {
     pub fn new(rows: Array2<f64>) -> Self {
         let pass = CandidatePass::detect(rows.ncols() + 2);
         Self::with_pass(rows, pass)
+    }
+
+    /// Whether this machine runs the candidate pass in the AVX-512 kernel (for data of
+    /// moderate width), which moves the point where the k-d tree stops being faster.
+    pub fn has_wide_kernel() -> bool {
+        #[cfg(target_arch = "x86_64")]
+        {
+            CandidatePass::FusedAvx512.runs_here()
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            false
+        }
     }
 
     /// Indexes the rows for the candidate pass given.

@@ -25,7 +25,10 @@ use crate::error::{Error, IndexFault, Result};
 pub use approximate::{ApproximateIndex, ApproximateSettings, GRAPH_CONNECTIONS};
 pub use brute_force::BruteForceIndex;
 pub use lof::LocalOutlierFactor;
-pub use reference::{IndexChoice, ReferenceIndex, TREE_AUTO_MAX_DIM};
+pub use reference::{
+    tree_auto_max_dim, IndexChoice, ReferenceIndex, TREE_AUTO_MAX_DIM,
+    TREE_AUTO_MAX_DIM_WIDE_KERNEL,
+};
 pub use tree::{TreeIndex, MAX_TREE_DIM};
 
 /// Whether a query may find itself among the indexed rows.
