@@ -605,30 +605,28 @@ impl BruteForceIndex {
                 self.nominate_by_product(&augmented, &mut lists, first_query, exclusion)
             }
             #[cfg(target_arch = "x86_64")]
-            CandidatePass::FusedAvx2 => {
-                let packed = fused::pack_queries(&augmented, m, width, fused::AVX2_GROUP);
+            CandidatePass::FusedAvx2 | CandidatePass::FusedAvx512 => {
+                let avx512 = self.pass == CandidatePass::FusedAvx512;
+                let group = if avx512 {
+                    fused::AVX512_GROUP
+                } else {
+                    fused::AVX2_GROUP
+                };
+                let packed = fused::pack_queries(&augmented, m, width, group);
                 let mut targets = fused::Targets {
                     lists: &mut lists,
                     first_query,
                     exclusion,
                 };
-                // SAFETY: the index chose this pass after seeing that the processor has AVX2
-                // and FMA (`CandidatePass::detect`, or a test that checked `runs_here`).
+                // SAFETY: the index chose this pass after seeing that the processor has its
+                // instructions (AVX-512F, or AVX2 and FMA): `CandidatePass::detect`, or a
+                // test that checked `runs_here`.
                 unsafe {
-                    fused::nominate_avx2(&self.operand, width, &packed, &mut targets);
-                }
-            }
-            #[cfg(target_arch = "x86_64")]
-            CandidatePass::FusedAvx512 => {
-                let packed = fused::pack_queries(&augmented, m, width, fused::AVX512_GROUP);
-                let mut targets = fused::Targets {
-                    lists: &mut lists,
-                    first_query,
-                    exclusion,
-                };
-                // SAFETY: as above, for AVX-512F.
-                unsafe {
-                    fused::nominate_avx512(&self.operand, width, &packed, &mut targets);
+                    if avx512 {
+                        fused::nominate_avx512(&self.operand, width, &packed, &mut targets);
+                    } else {
+                        fused::nominate_avx2(&self.operand, width, &packed, &mut targets);
+                    }
                 }
             }
         }
