@@ -67,7 +67,11 @@ fn bench(c: &mut Criterion) {
         .unwrap();
 
     let distribution = profile.feature_distribution().unwrap();
-    let deletion = Deletion::new(FillValue::Zero, distribution.location());
+    let deletion = Deletion::new(
+        FillValue::Zero,
+        distribution.location(),
+        &distribution.median(),
+    );
     let gaussian = ConditionalGaussian::new(
         distribution.location().clone(),
         distribution.covariance().clone(),

@@ -634,8 +634,8 @@ proptest! {
         prop_assert!((full - full_p).abs() < 1e-14);
 
         for fill in [FillValue::Zero, FillValue::Mean] {
-            let deletion = Deletion::new(fill, &mean);
-            let deletion_p = Deletion::new(fill, &mean_p);
+            let deletion = Deletion::new(fill, &mean, &mean);
+            let deletion_p = Deletion::new(fill, &mean_p, &mean_p);
             let try_shapley = |m: &NetworkModel, f: &dyn PerturbationFamily, x: &Array1<f64>,
                                gr: &Groups, design: &CoalitionDesign, full: f64| {
                 let mut rng = ChaCha8Rng::seed_from_u64(seed);

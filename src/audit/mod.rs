@@ -20,9 +20,8 @@
 
 pub mod agreement;
 pub mod reliability;
+mod settings;
 
-use std::fmt;
-use std::str::FromStr;
 use std::sync::Arc;
 
 use ndarray::{concatenate, Array2, ArrayView1, Axis};
@@ -30,130 +29,22 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::attribution::{integrated_gradients, CoalitionDesign, QuadratureRule};
-use crate::baselines::{BaselineChoice, BaselineMaker, BaselineSpec, ImageShape};
+use crate::attribution::{integrated_gradients, CoalitionDesign};
+use crate::baselines::{BaselineChoice, BaselineMaker, BaselineSpec};
 use crate::error::{Error, Result};
 use crate::groups::Groups;
 use crate::models::{check_target, FiniteDifference, GradientMethod, Model};
 use crate::neighbours::NeighbourIndex;
 use crate::perturbation::masking::{evaluate_design, MaskedGame};
 use crate::perturbation::{
-    ConditionalGaussian, Deletion, FillValue, MarginalRows, NearestRows, PerturbationFamily,
+    ConditionalGaussian, Deletion, MarginalRows, NearestRows, PerturbationFamily,
 };
 use crate::profile::Profile;
 use crate::stats::detectability_auc;
 
 pub use agreement::Agreement;
 pub use reliability::{Assessment, Verdict};
-
-/// `--sampler`: how replacement fills masked groups.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Sampler {
-    /// The conditional Gaussian of the profile's raw-feature distribution.
-    Gaussian,
-    /// Masked values from the reference rows nearest in the kept features.
-    Neighbours,
-    /// Masked values from reference rows drawn independently of the input.
-    Marginal,
-}
-
-impl FromStr for Sampler {
-    type Err = Error;
-    fn from_str(text: &str) -> Result<Self> {
-        match text {
-            "gaussian" => Ok(Sampler::Gaussian),
-            "neighbours" | "neighbors" => Ok(Sampler::Neighbours),
-            "marginal" => Ok(Sampler::Marginal),
-            _ => Err(Error::InvalidSetting {
-                flag: "--sampler",
-                value: text.to_string(),
-                expected: "one of gaussian, neighbours, marginal".into(),
-            }),
-        }
-    }
-}
-
-impl fmt::Display for Sampler {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(match self {
-            Sampler::Gaussian => "gaussian",
-            Sampler::Neighbours => "neighbours",
-            Sampler::Marginal => "marginal",
-        })
-    }
-}
-
-/// The settings of an audit, validated.
-#[derive(Debug, Clone, PartialEq)]
-pub struct AuditSettings {
-    /// Masks (coalitions) per row, shared by deletion and replacement.
-    pub samples: usize,
-    /// Replacement draws per mask.
-    pub draws: usize,
-    /// Path points of the interpolation family.
-    pub steps: usize,
-    /// Quadrature rule of the path integral.
-    pub rule: QuadratureRule,
-    /// What deletion sets masked groups to.
-    pub fill: FillValue,
-    /// How replacement draws masked groups.
-    pub sampler: Sampler,
-    /// Where the path starts: a fixed candidate or the best-ranked of a list.
-    pub baseline: BaselineChoice,
-    /// The input's image shape, for image inputs (blur baselines).
-    pub image: Option<ImageShape>,
-    /// The output explained; `None` picks the top-scoring one per row.
-    pub target: Option<usize>,
-    /// Seed of every random choice.
-    pub seed: u64,
-    /// Significance level for off-manifold.
-    pub alpha: f64,
-    /// Groups in the top-k overlap.
-    pub top_k: usize,
-}
-
-impl Default for AuditSettings {
-    fn default() -> Self {
-        AuditSettings {
-            samples: 1024,
-            draws: 4,
-            steps: 64,
-            rule: QuadratureRule::Midpoint,
-            fill: FillValue::Zero,
-            sampler: Sampler::Gaussian,
-            baseline: BaselineChoice::Best(crate::baselines::default_candidates(false)),
-            image: None,
-            target: None,
-            seed: 0,
-            alpha: 0.01,
-            top_k: 3,
-        }
-    }
-}
-
-impl AuditSettings {
-    /// Checks ranges that do not depend on the data.
-    pub fn validate(&self) -> Result<()> {
-        let positive = |flag: &'static str, v: usize, what: &str| {
-            if v == 0 {
-                Err(Error::InvalidSetting {
-                    flag,
-                    value: "0".into(),
-                    expected: format!("at least 1 {what}"),
-                })
-            } else {
-                Ok(())
-            }
-        };
-        positive("--samples", self.samples, "mask per row")?;
-        positive("--draws", self.draws, "draw per mask")?;
-        positive("--steps", self.steps, "path point")?;
-        positive("--top-k", self.top_k, "group")?;
-        self.rule.nodes(self.steps)?;
-        crate::profile::validate_alpha(self.alpha)
-    }
-}
+pub use settings::{AuditSettings, Method, Sampler};
 
 /// One masking family's findings for a row (SPEC: `families.deletion`,
 /// `families.replacement`).
@@ -434,7 +325,7 @@ impl<'a> Auditor<'a> {
             });
         }
         let reference = profile.feature_distribution()?;
-        let deletion = Deletion::new(settings.fill, reference.location());
+        let deletion = Deletion::new(settings.fill, reference.location(), &reference.median());
         let rows = Arc::new(reference.rows().to_owned());
         let replacement: Box<dyn PerturbationFamily> = match settings.sampler {
             Sampler::Gaussian => Box::new(ConditionalGaussian::new(

@@ -103,6 +103,7 @@ pub fn attribution_settings(
         seed: a.seed,
         alpha: a.alpha,
         top_k: a.top_k,
+        method: None,
     };
     settings.validate()?;
     Ok(settings)

@@ -15,6 +15,8 @@ pub enum FillValue {
     Zero,
     /// Each feature's mean over the fitted reference rows.
     Mean,
+    /// Each feature's median over the fitted reference rows.
+    Median,
     /// One constant for every feature.
     Constant(f64),
 }
@@ -25,12 +27,13 @@ impl FromStr for FillValue {
         match text {
             "zero" => Ok(FillValue::Zero),
             "mean" => Ok(FillValue::Mean),
+            "median" => Ok(FillValue::Median),
             _ => match text.parse::<f64>() {
                 Ok(v) if v.is_finite() => Ok(FillValue::Constant(v)),
                 _ => Err(Error::InvalidSetting {
                     flag: "--fill",
                     value: text.to_string(),
-                    expected: "zero, mean, or a finite number".into(),
+                    expected: "zero, mean, median, or a finite number".into(),
                 }),
             },
         }
@@ -42,6 +45,7 @@ impl std::fmt::Display for FillValue {
         match self {
             FillValue::Zero => f.write_str("zero"),
             FillValue::Mean => f.write_str("mean"),
+            FillValue::Median => f.write_str("median"),
             FillValue::Constant(v) => write!(f, "{v}"),
         }
     }
@@ -55,12 +59,17 @@ pub struct Deletion {
 }
 
 impl Deletion {
-    /// Deletion to `fill`, given the reference mean of each feature.
-    pub fn new(fill: FillValue, reference_mean: &Array1<f64>) -> Deletion {
+    /// Deletion to `fill`, given the reference mean and median of each feature.
+    pub fn new(
+        fill: FillValue,
+        reference_mean: &Array1<f64>,
+        reference_median: &Array1<f64>,
+    ) -> Deletion {
         let d = reference_mean.len();
         let (values, label) = match fill {
             FillValue::Zero => (Array1::zeros(d), "zero".to_string()),
             FillValue::Mean => (reference_mean.clone(), "mean".to_string()),
+            FillValue::Median => (reference_median.clone(), "median".to_string()),
             FillValue::Constant(v) => (Array1::from_elem(d, v), format!("constant:{v}")),
         };
         Deletion { values, label }

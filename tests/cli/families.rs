@@ -239,7 +239,11 @@ fn deletion_shapley_values_of_a_linear_model_are_weight_times_distance_to_the_fi
     let model = linear(&w, -0.5);
     let x: Array1<f64> = (0..10).map(|i| i as f64 * 0.37 - 1.2).collect();
     let c = 0.6;
-    let deletion = Deletion::new(FillValue::Constant(c), &Array1::zeros(10));
+    let deletion = Deletion::new(
+        FillValue::Constant(c),
+        &Array1::zeros(10),
+        &Array1::zeros(10),
+    );
     let names: Vec<String> = (0..10).map(|i| format!("f{i}")).collect();
     let groups = Groups::singletons(&names);
     let full = model.predict(x.view().insert_axis(Axis(0))).unwrap()[[0, 0]];

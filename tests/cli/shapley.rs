@@ -224,3 +224,204 @@ fn propagated_errors_match_the_spread_over_repeated_noise() {
         );
     }
 }
+
+/// What a sampled-design standard error promises, checked by simulation: a standard
+/// error is the standard deviation of the estimate over repetitions of the whole random
+/// procedure (the definition; common practice). Each seed draws a new mask design and new
+/// replacement draws for the same row, as an audit with another `--seed` would. Over 200
+/// seeds, for every group, the sample standard deviation of the estimates is compared
+/// with the root mean square of the reported standard errors (the root of the mean
+/// reported variance, which is what an unbiased variance estimate matches); the ratio
+/// must lie in [0.8, 1.25]. Every group is held to it on its own, so a pooled figure
+/// cannot hide a group whose error is off. The sampling error of a standard deviation
+/// from 200 draws is about 5% (more with heavy tails), so the band leaves room for it
+/// while it refuses errors off by a quarter.
+mod sampled_standard_errors {
+    use std::sync::Arc;
+
+    use ndarray::{Array1, Axis};
+    use rand::SeedableRng;
+    use rand_chacha::ChaCha8Rng;
+    use rayon::prelude::*;
+
+    use kilter::attribution::CoalitionDesign;
+    use kilter::corpus::{read_matrix, CsvOptions};
+    use kilter::groups::Groups;
+    use kilter::models::network::NetworkModel;
+    use kilter::models::Model;
+    use kilter::perturbation::masking::evaluate_design;
+    use kilter::perturbation::{
+        ConditionalGaussian, Deletion, FillValue, MarginalRows, NearestRows, PerturbationFamily,
+    };
+    use kilter::profile::FeatureDistribution;
+
+    use crate::families::{breast_cancer_standardized, linear};
+    use crate::harness::{repo, temp_dir};
+
+    const SEEDS: u64 = 200;
+    const LOW: f64 = 0.8;
+    const HIGH: f64 = 1.25;
+
+    /// Per group: the standard deviation of the estimates over the seeds and the root
+    /// mean square of the reported standard errors.
+    fn spread_and_reported(
+        model: &dyn Model,
+        family: &dyn PerturbationFamily,
+        input: &Array1<f64>,
+        groups: &Groups,
+        samples: usize,
+    ) -> (Vec<f64>, Vec<f64>) {
+        let m = groups.len();
+        let full = model.predict(input.view().insert_axis(Axis(0))).unwrap()[[0, 0]];
+        let runs: Vec<(Vec<f64>, Vec<f64>)> = (0..SEEDS)
+            .into_par_iter()
+            .map(|seed| {
+                let mut design_rng = ChaCha8Rng::seed_from_u64(seed);
+                design_rng.set_stream(0);
+                let design = CoalitionDesign::shapley_kernel(m, samples, &mut design_rng);
+                assert!(!design.is_exhaustive());
+                let mut fill_rng = ChaCha8Rng::seed_from_u64(seed);
+                fill_rng.set_stream(1);
+                let game = evaluate_design(
+                    model,
+                    family,
+                    input.view(),
+                    groups,
+                    &design,
+                    0,
+                    full,
+                    &mut fill_rng,
+                )
+                .unwrap();
+                (game.estimate.values, game.estimate.standard_errors)
+            })
+            .collect();
+        let n = SEEDS as f64;
+        let mut sd = Vec::with_capacity(m);
+        let mut rms = Vec::with_capacity(m);
+        for g in 0..m {
+            let mean = runs.iter().map(|r| r.0[g]).sum::<f64>() / n;
+            let ss: f64 = runs.iter().map(|r| (r.0[g] - mean).powi(2)).sum();
+            sd.push((ss / (n - 1.0)).sqrt());
+            rms.push((runs.iter().map(|r| r.1[g] * r.1[g]).sum::<f64>() / n).sqrt());
+        }
+        (sd, rms)
+    }
+
+    fn families(
+        distribution: &FeatureDistribution,
+        draws: usize,
+    ) -> Vec<(&'static str, Box<dyn PerturbationFamily>)> {
+        let rows = Arc::new(distribution.rows().to_owned());
+        vec![
+            (
+                "deletion (mean)",
+                Box::new(Deletion::new(
+                    FillValue::Mean,
+                    distribution.location(),
+                    &distribution.median(),
+                )),
+            ),
+            (
+                "replacement (gaussian)",
+                Box::new(ConditionalGaussian::new(
+                    distribution.location().clone(),
+                    distribution.covariance().clone(),
+                    draws,
+                )),
+            ),
+            (
+                "replacement (neighbours)",
+                Box::new(NearestRows::new(rows.clone(), distribution.scale(), draws)),
+            ),
+            (
+                "replacement (marginal)",
+                Box::new(MarginalRows::new(rows, draws)),
+            ),
+        ]
+    }
+
+    fn check(label: &str, name: &str, sd: &[f64], rms: &[f64]) -> Vec<String> {
+        let ratios: Vec<f64> = sd.iter().zip(rms).map(|(s, r)| s / r).collect();
+        eprintln!(
+            "{label}, {name}: spread / reported per group {:?}",
+            ratios.iter().map(|r| format!("{r:.2}")).collect::<Vec<_>>()
+        );
+        ratios
+            .iter()
+            .enumerate()
+            .filter(|(_, r)| !(LOW..=HIGH).contains(*r))
+            .map(|(g, r)| format!("{label}, {name}, group {g}: ratio {r:.3}"))
+            .collect()
+    }
+
+    /// (a) A linear model of twelve strongly correlated columns of the breast-cancer
+    /// corpus (radius, perimeter and area correlate above 0.99), standardized.
+    #[test]
+    fn linear_model_on_correlated_features() {
+        let data = breast_cancer_standardized();
+        let d = 12;
+        let rows = data.values.slice(ndarray::s![.., ..d]).to_owned();
+        let input = rows.row(7).to_owned();
+        let distribution = FeatureDistribution::fit(rows).unwrap();
+        let w = [
+            0.8, -0.5, 0.6, 0.4, -0.9, 0.3, 0.7, -0.6, 0.5, -0.2, 0.9, -0.4,
+        ];
+        let model = linear(&w, 0.2);
+        let groups = Groups::singletons(&data.names[..d]);
+        let mut failures = Vec::new();
+        for (name, family) in families(&distribution, 4) {
+            let (sd, rms) = spread_and_reported(&model, family.as_ref(), &input, &groups, 160);
+            if name.starts_with("deletion") {
+                // Lundberg & Lee (2017): deletion of a linear model is an additive game,
+                // which every design recovers exactly: no spread, no error to report.
+                for g in 0..d {
+                    assert!(
+                        sd[g] < 1e-9 && rms[g] < 1e-9,
+                        "group {g}: {} {}",
+                        sd[g],
+                        rms[g]
+                    );
+                }
+                continue;
+            }
+            failures.extend(check("linear", name, &sd, &rms));
+        }
+        assert!(failures.is_empty(), "{failures:#?}");
+    }
+
+    /// (b) The breast-cancer network of the reference models (two ReLU layers, sigmoid
+    /// output; tests/golden/models/README.md) on its 30 raw features in 15 groups of two,
+    /// at the query row whose prediction is nearest one half.
+    #[test]
+    fn network_on_grouped_features() {
+        let options = CsvOptions {
+            label_columns: vec!["diagnosis".into()],
+            ..CsvOptions::default()
+        };
+        let fit = read_matrix(&repo("tests/golden/breast_cancer_fit.csv"), &options).unwrap();
+        let query = read_matrix(&repo("tests/golden/breast_cancer_query.csv"), &options).unwrap();
+        let model = NetworkModel::load(&repo("tests/golden/models/mlp.json")).unwrap();
+        let predictions = model.predict(query.values.view()).unwrap();
+        let row = (0..query.values.nrows())
+            .min_by(|&a, &b| {
+                (predictions[[a, 0]] - 0.5)
+                    .abs()
+                    .total_cmp(&(predictions[[b, 0]] - 0.5).abs())
+            })
+            .unwrap();
+        let input = query.values.row(row).to_owned();
+        let dir = temp_dir();
+        let path = dir.path().join("groups.json");
+        let pairs: Vec<[usize; 2]> = (0..15).map(|g| [2 * g, 2 * g + 1]).collect();
+        std::fs::write(&path, serde_json::to_string(&pairs).unwrap()).unwrap();
+        let groups = Groups::from_json_file(&path, &fit.names).unwrap();
+        let distribution = FeatureDistribution::fit(fit.values.clone()).unwrap();
+        let mut failures = Vec::new();
+        for (name, family) in families(&distribution, 4) {
+            let (sd, rms) = spread_and_reported(&model, family.as_ref(), &input, &groups, 160);
+            failures.extend(check("network", name, &sd, &rms));
+        }
+        assert!(failures.is_empty(), "{failures:#?}");
+    }
+}
