@@ -23,6 +23,7 @@ use ndarray::{Array1, Array2, ArrayView1, Axis};
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 
+use crate::audit::BaselineCandidate;
 use crate::error::{Error, Result};
 use crate::groups::Groups;
 use crate::models::Model;
@@ -293,6 +294,40 @@ impl BaselineMaker {
         }
         Ok(out)
     }
+}
+
+/// The ranking score of a baseline candidate:
+///
+/// ```text
+/// τ       = max(α, 2 p_floor)
+/// gate    = clamp((baseline_p - p_floor) / (τ - p_floor), 0, 1)²
+/// quality = 0.35 (1 + ρ_R)/2 + 0.3 (1 - path_off_manifold_rate)
+///         + 0.2 (1 - min(1, completeness_gap / 0.25)) + 0.15 contrast
+/// score   = gate · quality
+/// ```
+///
+/// ρ_R is the Spearman agreement with the replacement attribution and `contrast` the
+/// candidate's `|f(x) - f(x')|` over the largest among the candidates (a baseline that
+/// the model scores like the input explains nothing). `p_floor` is the smallest p-value
+/// the profile can give (`2 / (1 + calibration rows)`): a baseline there is more extreme
+/// than every calibration row, as far off the data as the profile can tell, and its gate
+/// is 0; when the floor is above α (a small calibration set) τ moves up with it. The gate
+/// makes a baseline that is itself off the data lose to any on-data one.
+pub fn baseline_score(
+    candidate: &BaselineCandidate,
+    contrast: f64,
+    alpha: f64,
+    p_floor: f64,
+) -> f64 {
+    let tau = alpha.max(2.0 * p_floor);
+    let gate = ((candidate.baseline_p - p_floor) / (tau - p_floor))
+        .clamp(0.0, 1.0)
+        .powi(2);
+    let quality = 0.35 * (1.0 + candidate.agreement_with_replacement) / 2.0
+        + 0.3 * (1.0 - candidate.path_off_manifold_rate)
+        + 0.2 * (1.0 - (candidate.completeness_gap / 0.25).min(1.0))
+        + 0.15 * contrast;
+    (gate * quality).clamp(0.0, 1.0)
 }
 
 /// Separable Gaussian blur of a row-major image with channels last.

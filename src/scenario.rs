@@ -199,6 +199,66 @@ pub fn train_network(segments: &Array2<f64>, failed: &[f64], seed: u64, about: &
     }
 }
 
+/// How far a downstream pressure may exceed an upstream one before the fallback calls it a
+/// sensor fault (readings this far against the flow are never seen in the history).
+pub const FAULT_MARGIN_KPA: f64 = 10.0;
+
+/// A copy of the risk network as a vendor might ship it, with a sensor-fault fallback:
+/// when the pressure readings contradict the direction of flow (inlet below mid, or mid
+/// below outlet by more than [`FAULT_MARGIN_KPA`]), it distrusts them and answers from a seasonal rule on water temperature alone. No real
+/// segment triggers the fallback, so on the data it is the network; a masking explanation
+/// that fills one pressure with an average can trigger it, and then credits water
+/// temperature, which the network hardly uses on real segments (the construction of Slack et al.,
+/// AIES 2020, arising here from a plausible engineering rule).
+pub struct FaultFallback<M> {
+    /// The network it answers with on consistent readings.
+    pub network: M,
+    /// The water temperature (°C) at which the fallback's risk is one half.
+    pub pivot_temperature: f64,
+}
+
+impl<M: crate::models::Model> FaultFallback<M> {
+    /// Whether a row's pressures contradict the direction of flow by more than
+    /// [`FAULT_MARGIN_KPA`].
+    pub fn is_fault(row: ndarray::ArrayView1<'_, f64>) -> bool {
+        row[0] < row[1] - FAULT_MARGIN_KPA || row[1] < row[2] - FAULT_MARGIN_KPA
+    }
+}
+
+impl<M: crate::models::Model> crate::models::Model for FaultFallback<M> {
+    fn input_dim(&self) -> Option<usize> {
+        Some(FEATURES.len())
+    }
+
+    fn predict(&self, inputs: ndarray::ArrayView2<'_, f64>) -> crate::Result<Array2<f64>> {
+        let mut out = self.network.predict(inputs)?;
+        for (row, mut answer) in inputs.outer_iter().zip(out.outer_iter_mut()) {
+            if Self::is_fault(row) {
+                let p = 1.0 / (1.0 + (-(row[8] - self.pivot_temperature)).exp());
+                answer[0] = 1.0 - p;
+                answer[1] = p;
+            }
+        }
+        Ok(out)
+    }
+
+    fn gradients(
+        &self,
+        _inputs: ndarray::ArrayView2<'_, f64>,
+        _target: usize,
+    ) -> crate::Result<Option<Array2<f64>>> {
+        Ok(None)
+    }
+
+    fn preferred_batch(&self) -> usize {
+        self.network.preferred_batch()
+    }
+
+    fn describe(&self) -> String {
+        format!("{} with a sensor-fault fallback", self.network.describe())
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -19,6 +19,9 @@
 //! other rows.
 
 pub mod agreement;
+pub mod findings;
+pub mod probes;
+mod record;
 pub mod reliability;
 mod settings;
 
@@ -27,183 +30,30 @@ use std::sync::Arc;
 use ndarray::{concatenate, Array2, ArrayView1, Axis};
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
-use serde::{Deserialize, Serialize};
 
 use crate::attribution::{integrated_gradients, CoalitionDesign};
-use crate::baselines::{BaselineChoice, BaselineMaker, BaselineSpec};
+use crate::baselines::{baseline_score, BaselineChoice, BaselineMaker, BaselineSpec};
 use crate::error::{Error, Result};
 use crate::groups::Groups;
 use crate::models::{check_target, FiniteDifference, GradientMethod, Model};
 use crate::neighbours::NeighbourIndex;
-use crate::perturbation::masking::{evaluate_design, MaskedGame};
+use crate::perturbation::masking::{evaluate_design, kept_features, MaskedGame};
 use crate::perturbation::{
     ConditionalGaussian, Deletion, MarginalRows, NearestRows, PerturbationFamily,
 };
 use crate::profile::Profile;
 use crate::stats::detectability_auc;
+use ndarray::Array1;
 
 pub use agreement::Agreement;
-pub use reliability::{Assessment, Verdict};
+pub use findings::{Assessment, Evidence, Finding, Severity};
+pub use probes::OnDataEvidence;
+pub use reliability::Verdict;
+
+use findings::Subject;
+pub use record::*;
+use reliability::Departure;
 pub use settings::{AuditSettings, Method, Sampler};
-
-/// One masking family's findings for a row (SPEC: `families.deletion`,
-/// `families.replacement`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct MaskingFamily {
-    /// How masked groups were filled.
-    pub fill: String,
-    /// Shapley-value estimate of each group.
-    pub attribution: Vec<f64>,
-    /// Standard error of each estimate (0 when every coalition was evaluated).
-    pub standard_errors: Vec<f64>,
-    /// `v(∅)`: the model's expected score with every group filled.
-    pub expected_value: f64,
-    /// Masks (coalitions) evaluated, besides the full one.
-    pub masks: usize,
-    /// Whether every coalition was evaluated (no coalition-sampling error).
-    pub exhaustive: bool,
-    /// Perturbed inputs behind the estimate.
-    pub perturbed_inputs: usize,
-    /// Fraction of them off-manifold.
-    pub off_manifold_rate: f64,
-    /// Their median `p_combined`.
-    pub median_p: f64,
-    /// Held-out AUC of the classifier two-sample test (null with fewer than 4 inputs).
-    pub detectability_auc: Option<f64>,
-    /// Counts of the inputs' `p_combined` in the bins of [`P_BINS`].
-    pub p_histogram: Vec<usize>,
-}
-
-/// Bin edges of `p_histogram`: finer toward 0, where off-manifold inputs fall. Under the
-/// calibration distribution (conformal p-values are uniform) a bin holds about its width.
-pub const P_BINS: [f64; 8] = [0.0, 0.001, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0];
-
-/// Counts of p-values per bin of [`P_BINS`] (the last bin includes 1).
-pub fn p_histogram(p: &[f64]) -> Vec<usize> {
-    let mut counts = vec![0; P_BINS.len() - 1];
-    for &v in p {
-        let bin = (1..P_BINS.len() - 1)
-            .find(|&b| v < P_BINS[b])
-            .map_or(P_BINS.len() - 2, |b| b - 1);
-        counts[bin] += 1;
-    }
-    counts
-}
-
-/// The interpolation family's findings for a row (SPEC: `families.interpolation`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct PathFamily {
-    /// The baseline the path starts from.
-    pub baseline: String,
-    /// The model's score for the target at the baseline.
-    pub prediction_at_baseline: f64,
-    /// Integrated gradients summed within each group.
-    pub attribution: Vec<f64>,
-    /// `|Σ attribution - (f(x) - f(baseline))| / max(|f(x) - f(baseline)|, 1e-12)`.
-    pub completeness_gap: f64,
-    /// Exact or finite-difference gradients.
-    pub gradients: GradientMethod,
-    /// Path points.
-    pub perturbed_inputs: usize,
-    /// Fraction of path points off-manifold.
-    pub off_manifold_rate: f64,
-    /// Median `p_combined` of the path points.
-    pub median_p: f64,
-    /// Held-out AUC of the classifier two-sample test (null with fewer than 4 points).
-    pub detectability_auc: Option<f64>,
-    /// Counts of the path points' `p_combined` in the bins of [`P_BINS`].
-    pub p_histogram: Vec<usize>,
-    /// Every baseline candidate considered, best first (one with a fixed `--baseline`).
-    pub candidates: Vec<BaselineCandidate>,
-}
-
-/// The three families.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Families {
-    pub deletion: MaskingFamily,
-    pub replacement: MaskingFamily,
-    pub interpolation: PathFamily,
-}
-
-/// Agreement of each pair of families (SPEC: `agreement.A~B`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct PairAgreement {
-    #[serde(rename = "deletion~replacement")]
-    pub deletion_replacement: Agreement,
-    #[serde(rename = "deletion~interpolation")]
-    pub deletion_interpolation: Agreement,
-    #[serde(rename = "replacement~interpolation")]
-    pub replacement_interpolation: Agreement,
-}
-
-/// A supplied explanation's agreement with each family (SPEC: `supplied`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct SuppliedAgreement {
-    pub deletion: Agreement,
-    pub replacement: Agreement,
-    pub interpolation: Agreement,
-}
-
-/// One audit record (SPEC: `kilter audit`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct AuditRecord {
-    pub row: usize,
-    pub target: usize,
-    /// The model's score for `target` on the original input.
-    pub prediction: f64,
-    /// `p_combined` of the original input itself.
-    pub input_p: f64,
-    pub families: Families,
-    pub agreement: PairAgreement,
-    /// With `--explanations` only.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub supplied: Option<SuppliedAgreement>,
-    /// The normalised evidence the reliability is computed from.
-    pub evidence: reliability::Evidence,
-    pub reliability: f64,
-    pub verdict: Verdict,
-    pub reasons: Vec<String>,
-}
-
-/// One ranked baseline candidate (SPEC: `kilter baseline`, `candidates`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct BaselineCandidate {
-    pub name: String,
-    /// `p_combined` of the baseline (the median over the draws for `uniform:N`,
-    /// `reference:N`).
-    pub baseline_p: f64,
-    /// Fraction of the path points off-manifold.
-    pub path_off_manifold_rate: f64,
-    /// The model's score for the target at the baseline (mean over draws).
-    pub prediction_at_baseline: f64,
-    /// Completeness gap of integrated gradients from this baseline.
-    pub completeness_gap: f64,
-    /// Spearman correlation of its attribution with the replacement family's.
-    pub agreement_with_replacement: f64,
-    /// The ranking score (README: baseline ranking).
-    pub score: f64,
-}
-
-/// One `kilter baseline` record.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct BaselineRecord {
-    pub row: usize,
-    pub target: usize,
-    /// The model's score for `target` on the input.
-    pub prediction: f64,
-    /// The best candidate's name.
-    pub recommended: String,
-    /// Every candidate, best first.
-    pub candidates: Vec<BaselineCandidate>,
-}
 
 /// A candidate with what the audit needs of it beyond the record.
 #[derive(Debug, Clone)]
@@ -217,41 +67,9 @@ pub struct BaselineEvaluation {
     pub path_histogram: Vec<usize>,
     /// The embedded path points.
     pub embedded_path: Array2<f64>,
+    /// The baseline (the mean of its draws, for the expected-gradients candidates).
+    pub baseline_point: Array1<f64>,
     contrast: f64,
-}
-
-/// The ranking score of a baseline candidate:
-///
-/// ```text
-/// τ       = max(α, 2 p_floor)
-/// gate    = clamp((baseline_p - p_floor) / (τ - p_floor), 0, 1)²
-/// quality = 0.35 (1 + ρ_R)/2 + 0.3 (1 - path_off_manifold_rate)
-///         + 0.2 (1 - min(1, completeness_gap / 0.25)) + 0.15 contrast
-/// score   = gate · quality
-/// ```
-///
-/// ρ_R is the Spearman agreement with the replacement attribution and `contrast` the
-/// candidate's `|f(x) - f(x')|` over the largest among the candidates (a baseline that
-/// the model scores like the input explains nothing). `p_floor` is the smallest p-value
-/// the profile can give (`2 / (1 + calibration rows)`): a baseline there is more extreme
-/// than every calibration row, as far off the data as the profile can tell, and its gate
-/// is 0; when the floor is above α (a small calibration set) τ moves up with it. The gate
-/// makes a baseline that is itself off the data lose to any on-data one.
-pub fn baseline_score(
-    candidate: &BaselineCandidate,
-    contrast: f64,
-    alpha: f64,
-    p_floor: f64,
-) -> f64 {
-    let tau = alpha.max(2.0 * p_floor);
-    let gate = ((candidate.baseline_p - p_floor) / (tau - p_floor))
-        .clamp(0.0, 1.0)
-        .powi(2);
-    let quality = 0.35 * (1.0 + candidate.agreement_with_replacement) / 2.0
-        + 0.3 * (1.0 - candidate.path_off_manifold_rate)
-        + 0.2 * (1.0 - (candidate.completeness_gap / 0.25).min(1.0))
-        + 0.15 * contrast;
-    (gate * quality).clamp(0.0, 1.0)
 }
 
 /// Everything needed to audit rows: the profile, the model, the groups and the families.
@@ -262,6 +80,8 @@ pub struct Auditor<'a> {
     settings: AuditSettings,
     deletion: Deletion,
     replacement: Box<dyn PerturbationFamily>,
+    /// The reference mean: the frame of a replacement explanation's story.
+    replacement_point: Array1<f64>,
     baselines: BaselineMaker,
     differences: FiniteDifference,
 }
@@ -276,6 +96,7 @@ enum Stream {
     DetectReplacement = 4,
     DetectInterpolation = 5,
     Baselines = 6,
+    Probes = 7,
 }
 
 impl<'a> Auditor<'a> {
@@ -287,6 +108,18 @@ impl<'a> Auditor<'a> {
         settings: AuditSettings,
     ) -> Result<Self> {
         settings.validate()?;
+        // A declared method sets the family kilter recomputes it with.
+        let mut settings = settings;
+        match settings.method.clone() {
+            Some(
+                Method::Occlusion(fill) | Method::Surrogate(fill) | Method::ShapleyFilled(fill),
+            ) => settings.fill = fill,
+            Some(Method::ShapleySampled(sampler)) => settings.sampler = sampler,
+            Some(Method::IntegratedGradients(baseline)) => {
+                settings.baseline = BaselineChoice::Fixed(baseline)
+            }
+            None => {}
+        }
         let d = profile.feature_names().len();
         if let Some(width) = model.input_dim() {
             if width != d {
@@ -355,6 +188,7 @@ impl<'a> Auditor<'a> {
             settings,
             deletion,
             replacement,
+            replacement_point: reference.location().clone(),
             baselines,
             differences,
         })
@@ -452,6 +286,7 @@ impl<'a> Auditor<'a> {
                 path_histogram: p_histogram(&p[nb..]),
                 embedded_path: embedded.slice(ndarray::s![nb.., ..]).to_owned(),
                 contrast: (path.at_input - prediction_at_baseline).abs(),
+                baseline_point: rows.mean_axis(Axis(0)).expect("at least one baseline row"),
             });
         }
         let widest = evaluations
@@ -526,7 +361,6 @@ impl<'a> Auditor<'a> {
         rng.set_stream(row as u64 * 8 + purpose as u64);
         rng
     }
-
     /// Audits one input row; `supplied` is the user's attribution for it, one per group.
     pub fn audit_row(
         &self,
@@ -535,6 +369,15 @@ impl<'a> Auditor<'a> {
         supplied: Option<&[f64]>,
     ) -> Result<AuditRecord> {
         let m = self.groups.len();
+        if let Some(s) = supplied {
+            if s.len() != m {
+                return Err(Error::InvalidSetting {
+                    flag: "--explanations",
+                    value: format!("{} values for row {}", s.len(), row + 1),
+                    expected: format!("one value per group ({m})"),
+                });
+            }
+        }
         let (target, prediction) = self.target_and_prediction(input)?;
 
         let design = CoalitionDesign::shapley_kernel(
@@ -562,26 +405,48 @@ impl<'a> Auditor<'a> {
             prediction,
             &mut self.stream(row, Stream::Replacement),
         )?;
-        // Off-manifold scores of the input and the masked inputs, in one batch.
-        let all = concatenate![
-            Axis(0),
+        // One group at a time set to the fill: the occlusion twin of a supplied
+        // `occlusion:FILL` explanation.
+        let occluded = match &self.settings.method {
+            Some(Method::Occlusion(_)) => Some(self.occlusion(input, target, prediction)?),
+            _ => None,
+        };
+        // Off-manifold scores of the input, the masked inputs and the occluded ones, in
+        // one batch.
+        let mut parts = vec![
             input.insert_axis(Axis(0)),
             deleted.inputs.view(),
-            replaced.inputs.view()
+            replaced.inputs.view(),
         ];
+        if let Some((rows, _)) = &occluded {
+            parts.push(rows.view());
+        }
+        let all = ndarray::concatenate(Axis(0), &parts).expect("same width");
         let embedded = self.profile.embed(all.view())?;
         let p = self.profile.score_embedded(embedded.view())?.p_combined;
+        let p = p.as_slice().expect("contiguous");
         let nd = deleted.inputs.nrows();
-        let spans = [(1, 1 + nd), (1 + nd, all.nrows())];
+        let nr = replaced.inputs.nrows();
+        let spans = [
+            (1, 1 + nd),
+            (1 + nd, 1 + nd + nr),
+            (1 + nd + nr, all.nrows()),
+        ];
         let alpha = self.settings.alpha;
         let masking = |game: &MaskedGame, fill: String, span: (usize, usize), purpose| {
-            let (rate, median) =
-                off_manifold(&p.as_slice().expect("contiguous")[span.0..span.1], alpha);
-            let own = &p.as_slice().expect("contiguous")[span.0..span.1];
+            let own = &p[span.0..span.1];
+            let (rate, median) = off_manifold(own, alpha);
+            let mut attribution = game.estimate.values.clone();
+            let scale = game
+                .values
+                .iter()
+                .chain([game.empty, game.full].iter())
+                .fold(0.0_f64, |m, v| m.max(v.abs()));
+            reliability::snap_zeros(&mut attribution, scale);
             MaskingFamily {
                 p_histogram: p_histogram(own),
                 fill,
-                attribution: game.estimate.values.clone(),
+                attribution,
                 standard_errors: game.estimate.standard_errors.clone(),
                 expected_value: game.empty,
                 masks: game.values.len() + 1,
@@ -618,12 +483,19 @@ impl<'a> Auditor<'a> {
         let best = ranked.remove(0);
         let mut candidates: Vec<BaselineCandidate> = vec![best.record.clone()];
         candidates.extend(ranked.iter().map(|e| e.record.clone()));
+        let mut path_attribution = best.attribution.clone();
+        reliability::snap_zeros(
+            &mut path_attribution,
+            prediction
+                .abs()
+                .max(best.record.prediction_at_baseline.abs()),
+        );
         let interpolation = PathFamily {
             p_histogram: best.path_histogram.clone(),
             candidates,
             baseline: best.record.name.clone(),
             prediction_at_baseline: best.record.prediction_at_baseline,
-            attribution: best.attribution,
+            attribution: path_attribution,
             completeness_gap: best.record.completeness_gap,
             gradients: best.gradients,
             perturbed_inputs: best.embedded_path.nrows(),
@@ -643,43 +515,142 @@ impl<'a> Auditor<'a> {
             deletion_interpolation: agree(&deletion.attribution, &interpolation.attribution),
             replacement_interpolation: agree(&replacement.attribution, &interpolation.attribution),
         };
-        let supplied_agreement = match supplied {
-            None => None,
-            Some(s) => {
-                if s.len() != m {
-                    return Err(Error::InvalidSetting {
-                        flag: "--explanations",
-                        value: format!("{} values for row {}", s.len(), row + 1),
-                        expected: format!("one value per group ({m})"),
-                    });
-                }
-                Some(SuppliedAgreement {
-                    deletion: agree(s, &deletion.attribution),
-                    replacement: agree(s, &replacement.attribution),
-                    interpolation: agree(s, &interpolation.attribution),
-                })
-            }
-        };
-        let answer_gap = answer_gap(&deleted, &replaced);
+        let supplied_values = supplied.map(|s| {
+            let mut values = s.to_vec();
+            reliability::snap_zeros(&mut values, 0.0);
+            values
+        });
+        let supplied_agreement = supplied_values.as_ref().map(|s| SuppliedAgreement {
+            deletion: agree(s, &deletion.attribution),
+            replacement: agree(s, &replacement.attribution),
+            interpolation: agree(s, &interpolation.attribution),
+        });
+
         let families = Families {
             deletion,
             replacement,
             interpolation,
         };
-        let assessment = reliability::assess(&reliability::Findings {
+        let (deletion, replacement, interpolation) = (
+            &families.deletion,
+            &families.replacement,
+            &families.interpolation,
+        );
+        // The subject, its frame of reference and its perturbed inputs.
+        let departure = |rate: f64, median_p: f64, auc: Option<f64>| Departure {
+            off_manifold_rate: rate,
+            median_p,
+            detectability_auc: auc,
+        };
+        let from_masking =
+            |f: &MaskingFamily| departure(f.off_manifold_rate, f.median_p, f.detectability_auc);
+        let surrogate;
+        let (reference_point, subject_departure, declared, inputs_phrase, reference_phrase) =
+            match &self.settings.method {
+                Some(Method::IntegratedGradients(_)) => (
+                    best.baseline_point.clone(),
+                    departure(
+                        interpolation.off_manifold_rate,
+                        interpolation.median_p,
+                        interpolation.detectability_auc,
+                    ),
+                    Some(interpolation.attribution.as_slice()),
+                    "path points".to_string(),
+                    format!("{} baseline", interpolation.baseline),
+                ),
+                Some(Method::ShapleySampled(_)) => (
+                    self.replacement_point.clone(),
+                    from_masking(replacement),
+                    Some(replacement.attribution.as_slice()),
+                    format!("inputs drawn by the {} sampler", self.settings.sampler),
+                    "reference mean".to_string(),
+                ),
+                Some(Method::Occlusion(_)) => {
+                    let (_, values) = occluded.as_ref().expect("computed for occlusion");
+                    let own = &p[spans[2].0..spans[2].1];
+                    let (rate, median) = off_manifold(own, alpha);
+                    (
+                        self.deletion.values().clone(),
+                        departure(rate, median, None),
+                        Some(values.as_slice()),
+                        format!("occluded ({})", self.deletion.inputs_phrase()),
+                        format!("{} fill", self.deletion.describe()),
+                    )
+                }
+                Some(Method::Surrogate(_)) => {
+                    surrogate = linear_surrogate(&design, &deleted)?;
+                    (
+                        self.deletion.values().clone(),
+                        from_masking(deletion),
+                        Some(surrogate.as_slice()),
+                        self.deletion.inputs_phrase(),
+                        format!("{} fill", self.deletion.describe()),
+                    )
+                }
+                Some(Method::ShapleyFilled(_)) | None => (
+                    self.deletion.values().clone(),
+                    from_masking(deletion),
+                    Some(deletion.attribution.as_slice()),
+                    self.deletion.inputs_phrase(),
+                    format!("{} fill", self.deletion.describe()),
+                ),
+            };
+        let on_data = probes::probe(
+            self.model,
+            self.replacement.as_ref(),
+            self.profile,
+            &self.groups,
+            input,
+            reference_point.view(),
+            target,
+            alpha,
+            &mut self.stream(row, Stream::Probes),
+        )?;
+        let no_errors = vec![0.0; m];
+        let method_name = self.settings.method.as_ref().map(|m| m.to_string());
+        let subject = match &supplied_values {
+            Some(values) => Subject {
+                name: "supplied",
+                phrase: match &method_name {
+                    Some(method) => format!("the supplied {method} explanation"),
+                    None => "the supplied explanation".to_string(),
+                },
+                inputs_phrase: match &method_name {
+                    Some(_) => inputs_phrase,
+                    None => format!("{} (method not declared)", self.deletion.inputs_phrase()),
+                },
+                reference_phrase,
+                attribution: values,
+                errors: &no_errors,
+                departure: subject_departure,
+                declared: method_name
+                    .as_ref()
+                    .and_then(|name| declared.map(|twin| (twin, name.clone()))),
+            },
+            None => Subject {
+                name: "deletion",
+                phrase: format!("deletion to {}", self.deletion.describe()),
+                inputs_phrase: self.deletion.inputs_phrase(),
+                reference_phrase: format!("{} fill", self.deletion.describe()),
+                attribution: &deletion.attribution,
+                errors: &deletion.standard_errors,
+                departure: from_masking(deletion),
+                declared: None,
+            },
+        };
+        let subject_name = subject.name.to_string();
+        let assessment = findings::assess(&findings::Context {
+            subject,
             families: &families,
             agreement: &agreement,
-            supplied: supplied_agreement.as_ref(),
-            supplied_values: supplied,
-            answer_gap,
-            input_p: p[0],
+            on_data: &on_data,
             alpha,
             top_k: k,
             group_names: self.groups.names(),
-            deletion_inputs: self.deletion.inputs_phrase(),
+            input_p: p[0],
             p_floor: self.profile.smallest_p_combined(),
-            steps: self.settings.steps,
         });
+        let reasons = assessment.reasons();
         Ok(AuditRecord {
             row,
             target,
@@ -688,12 +659,86 @@ impl<'a> Auditor<'a> {
             families,
             agreement,
             supplied: supplied_agreement,
+            subject: subject_name,
+            method: method_name,
+            on_data,
             evidence: assessment.evidence,
             reliability: assessment.reliability,
             verdict: assessment.verdict,
-            reasons: assessment.reasons,
+            findings: assessment.findings,
+            reasons,
         })
     }
+
+    /// Occlusion: each group alone set to the fill. Returns the occluded inputs and
+    /// `f(x) - f(x with group g filled)` for each group.
+    fn occlusion(
+        &self,
+        input: ArrayView1<'_, f64>,
+        target: usize,
+        prediction: f64,
+    ) -> Result<(Array2<f64>, Vec<f64>)> {
+        let m = self.groups.len();
+        let mut rows = Array2::<f64>::zeros((m, input.len()));
+        let mut rng = ChaCha8Rng::seed_from_u64(0);
+        for g in 0..m {
+            let mut coalition = vec![true; m];
+            coalition[g] = false;
+            let kept = kept_features(&self.groups, &coalition);
+            self.deletion.fill(
+                input,
+                &kept,
+                &mut rng,
+                rows.slice_mut(ndarray::s![g..g + 1, ..]),
+            )?;
+        }
+        let answers = self.model.predict(rows.view())?;
+        check_target(&answers, target)?;
+        let mut values: Vec<f64> = answers
+            .column(target)
+            .iter()
+            .map(|v| prediction - v)
+            .collect();
+        reliability::snap_zeros(&mut values, prediction);
+        Ok((rows, values))
+    }
+}
+
+/// The linear surrogate of a supplied `surrogate:FILL` explanation, recomputed on the
+/// deletion game: ordinary least squares of `v(S)` on the kept-group indicators with an
+/// intercept, over every mask of the design and the empty and full coalitions, unweighted.
+fn linear_surrogate(design: &CoalitionDesign, game: &MaskedGame) -> Result<Vec<f64>> {
+    let m = design.groups();
+    let masks = design.coalitions();
+    let n = masks.len() + 2;
+    let mut x = nalgebra::DMatrix::<f64>::zeros(n, m + 1);
+    let mut y = nalgebra::DVector::<f64>::zeros(n);
+    for (k, mask) in masks.iter().enumerate() {
+        x[(k, 0)] = 1.0;
+        for (g, &kept) in mask.iter().enumerate() {
+            x[(k, g + 1)] = f64::from(u8::from(kept));
+        }
+        y[k] = game.values[k];
+    }
+    x[(n - 2, 0)] = 1.0;
+    y[n - 2] = game.empty;
+    for g in 0..=m {
+        x[(n - 1, g)] = 1.0;
+    }
+    y[n - 1] = game.full;
+    let normal = x.transpose() * &x;
+    let rhs = x.transpose() * y;
+    let solution = normal
+        .cholesky()
+        .map(|c| c.solve(&rhs))
+        .ok_or(Error::InvalidSetting {
+            flag: "--samples",
+            value: masks.len().to_string(),
+            expected: format!("enough masks to fit a surrogate of {m} groups"),
+        })?;
+    let mut values: Vec<f64> = solution.iter().skip(1).copied().collect();
+    reliability::snap_zeros(&mut values, game.full.abs().max(game.empty.abs()));
+    Ok(values)
 }
 
 /// Index of the largest value (the first of equals).
@@ -718,34 +763,6 @@ fn off_manifold(p: &[f64], alpha: f64) -> (f64, f64) {
     }
     let rate = p.iter().filter(|&&v| v < alpha).count() as f64 / p.len() as f64;
     (rate, crate::stats::median(p).expect("not empty"))
-}
-
-/// How differently the model answers the same masks under deletion and replacement: the
-/// mean absolute difference of `v(S)` over the design (the empty coalition included),
-/// relative to the span of the replacement game (the largest of `|f(x) - v(∅)|` under
-/// either fill and the range of the replacement values); capped at 1.
-fn answer_gap(deleted: &MaskedGame, replaced: &MaskedGame) -> f64 {
-    let diffs: Vec<f64> = deleted
-        .values
-        .iter()
-        .zip(&replaced.values)
-        .map(|(a, b)| (a - b).abs())
-        .chain(std::iter::once((deleted.empty - replaced.empty).abs()))
-        .collect();
-    let (low, high) = replaced
-        .values
-        .iter()
-        .chain([replaced.empty, replaced.full].iter())
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
-            (l.min(v), h.max(v))
-        });
-    let span = (deleted.full - deleted.empty)
-        .abs()
-        .max((replaced.full - replaced.empty).abs())
-        .max(high - low)
-        .max(1e-12);
-    let mean = diffs.iter().sum::<f64>() / diffs.len() as f64;
-    (mean / span).min(1.0)
 }
 
 /// Reads supplied explanations: one row per input row, one column per group.

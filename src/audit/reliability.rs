@@ -1,55 +1,51 @@
-//! The reliability score: how much of a row's explanation survives the on-manifold
-//! evidence, with one plain sentence per finding that lowered it.
+//! The reliability score as pure numbers: how far the subject explanation's story holds
+//! on data-like inputs. The sentences written from these numbers live in
+//! [`super::findings`].
 //!
-//! The replacement family is the on-manifold evidence: its masked groups are drawn from
-//! the data given the kept ones, so its inputs look like data. A family whose inputs leave
-//! the manifold is penalised in proportion to how far they leave it (its *severity*) times
-//! how much its attribution disagrees with replacement: leaving the manifold while
-//! agreeing costs nothing. With `α` the significance level, `r` an off-manifold rate,
-//! `m` a median p-value, `A` a detectability AUC (F a family, R replacement):
-//!
-//! ```text
-//! excess(r)     = clamp((r - α) / (1 - α), 0, 1)
-//! severity_F    = max( excess(r_F),
-//!                      clamp(2 (A_F - max(A_R, ½)), 0, 1),
-//!                      clamp(1 - m_F / max(m_R, α), 0, 1) )
-//! â = a / ‖a‖₁, ŝe_a = se_a / ‖a‖₁ (likewise for b)
-//! disagreement(a, b) = ½ Σᵢ max(0, |âᵢ - b̂ᵢ| - 2 √(ŝe_aᵢ² + ŝe_bᵢ²))
-//!
-//! P_deletion      = severity_D · √disagreement(D, R)
-//! P_answers       = ½ · severity_D · answer_gap
-//! P_interpolation = severity_I · √disagreement(I, R)
-//! P_completeness  = ½ · clamp((gap - 0.01) / 0.24, 0, 1)
-//! P_replacement   = ½ · excess(r_R)
-//! P_uncertainty   = ½ · clamp((u - 0.25) / 0.75, 0, 1)
-//! P_supplied      = disagreement(supplied, R)                (with --explanations)
-//!
-//! reliability = Π (1 - P)        reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable
-//! ```
-//!
-//! The disagreement is the share of normalised attribution mass that moves between the
-//! two (0: the same explanation up to scale; 1: opposite signs or disjoint supports),
-//! counting only differences beyond twice their joint standard error, so sampling noise
-//! alone is not disagreement; normalising makes it scale-free, so supplied explanations
-//! in other units (gradients, surrogate coefficients) compare fairly. The square root
-//! makes a moderate disagreement weigh nearly as much as a complete one when the inputs
-//! behind it are far off the manifold: a changed top feature is already a different
-//! explanation. The rank statistics of `agreement` are reported, not scored: they swing
-//! on near-ties that sampling noise decides. `answer_gap` is the mean |v_D(S) - v_R(S)| over the masks relative to the replacement
-//! game's span; `u` the larger relative standard error ‖se‖/‖φ‖ of the two masking
-//! estimates; `gap` the interpolation completeness gap. Every term is monotone in its
-//! evidence and each P lies in [0, 1], so the score lies in [0, 1].
+//! The subject is the explanation being judged: the supplied one with `--explanations`,
+//! else kilter's deletion recomputation. Its *story* is which groups matter, in which
+//! direction and which come first. The evidence is the on-data probes
+//! ([`super::probes`]): what the model does with each group on inputs that look like
+//! data, in the same frame as the subject (toward its fill or baseline). Leaving the data
+//! while telling the story the model tells on the data costs nothing; credit to groups
+//! the model does not move with on the data, sign flips on the top groups and a changed
+//! top-k set do. [`FORMULA`] is the formula as the README prints it; a test holds the two
+//! together.
 
 use serde::{Deserialize, Serialize};
 
-use super::{Agreement, Families, PairAgreement, SuppliedAgreement};
+use super::probes::OnDataEvidence;
+
+/// The formula, as the README prints it (a test checks that the README holds this text).
+pub const FORMULA: &str = "\
+a      = the subject's attribution, se its standard errors (0 for a supplied one)
+â_g    = max(0, |a_g| - 2 se_g) / Σ|a|           credit share beyond noise
+e_g    = on-data effect of group g toward the subject's fill or baseline (probes)
+ê_g    = (|e_g| + 2 se(e_g)) / Σ|e|               on-data share, read generously
+q_g    = ê_g / â_g                                 support of the credit on the data
+U      = Σ_g â_g · clamp((0.25 - q_g) / 0.2, 0, 1)  credit to groups unused on the data
+T      = the top-k groups of |a| with â_g ≥ 0.05
+F      = Σ_{g∈T, e_g opposite to a_g beyond 2 se} â_g / Σ_{g∈T} â_g   sign flips
+K      = 1 - Σ_{g∈T} |e_g| / Σ_{g∈top-k of |e|} |e_g|                top-k change
+D      = 1 - (1 - U)(1 - F)(1 - clamp((K - 0.25) / 0.5, 0, 1))
+sev    = max(excess(r_S), clamp(2 (A_S - max(A_R, ½)), 0, 1),
+             clamp(1 - m_S / max(m_R, α), 0, 1))   how far the subject's inputs leave the data
+excess(r) = clamp((r - α) / (1 - α), 0, 1)
+
+P_story       = min(1, 2 D) · (½ + ½ sev)
+P_evidence    = ½ · Σ_{g without on-data probes} â_g
+P_uncertainty = ½ · clamp((u - 0.25) / 0.75, 0, 1),  u = ‖se‖ / ‖a‖
+P_declared    = ½ · clamp((L - 0.5) / 0.5, 0, 1),  L = Σ|a - t| / Σ|t| against the
+                recomputation t of the declared --method (supplied explanations)
+
+reliability = Π (1 - P)     reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable";
 
 /// Scores at or above this are `reliable`.
 pub const RELIABLE_FROM: f64 = 0.7;
 /// Scores at or above this (and below [`RELIABLE_FROM`]) are `doubtful`.
 pub const DOUBTFUL_FROM: f64 = 0.4;
-/// Penalties below this do not get a reason of their own.
-const REASON_FROM: f64 = 0.02;
+/// Share of the subject's credit below which a group does not count among its top groups.
+const TOP_SHARE: f64 = 0.05;
 
 /// The verdict on a row's explanation.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -82,110 +78,142 @@ impl Verdict {
     }
 }
 
-/// The normalised evidence and each penalty (record field `evidence`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Evidence {
-    pub deletion_severity: f64,
-    pub interpolation_severity: f64,
-    pub deletion_disagreement: f64,
-    pub interpolation_disagreement: f64,
-    pub answer_gap: f64,
-    pub uncertainty: f64,
-    pub deletion_penalty: f64,
-    pub answer_penalty: f64,
-    pub interpolation_penalty: f64,
-    pub completeness_penalty: f64,
-    pub replacement_penalty: f64,
-    pub uncertainty_penalty: f64,
-    /// With `--explanations` only; null otherwise.
-    pub supplied_penalty: Option<f64>,
+/// How far a family's perturbed inputs leave the data, against the replacement family's.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Departure {
+    pub off_manifold_rate: f64,
+    pub median_p: f64,
+    pub detectability_auc: Option<f64>,
 }
 
-impl Evidence {
-    /// A short title for the largest penalty, for tables ("the masking fill misleads");
-    /// `None` when nothing lowered the score.
-    pub fn main_finding(&self) -> Option<&'static str> {
-        let penalties = [
-            (
-                self.deletion_penalty,
-                "deletion leaves the data and disagrees",
-            ),
-            (self.answer_penalty, "the model reacts to the fill itself"),
-            (
-                self.interpolation_penalty,
-                "the path leaves the data and disagrees",
-            ),
-            (self.completeness_penalty, "the path integral is incomplete"),
-            (
-                self.replacement_penalty,
-                "even in-distribution fills leave the data",
-            ),
-            (self.uncertainty_penalty, "estimates too noisy to judge"),
-            (
-                self.supplied_penalty.unwrap_or(0.0),
-                "the supplied explanation disagrees",
-            ),
-        ];
-        penalties
-            .iter()
-            .filter(|(p, _)| *p >= REASON_FROM)
-            .max_by(|a, b| a.0.total_cmp(&b.0))
-            .map(|(_, title)| *title)
-    }
-}
-
-/// What the assessment reads.
-pub struct Findings<'a> {
-    pub families: &'a Families,
-    pub agreement: &'a PairAgreement,
-    pub supplied: Option<&'a SuppliedAgreement>,
-    /// The supplied attribution itself, with `supplied`.
-    pub supplied_values: Option<&'a [f64]>,
-    pub answer_gap: f64,
-    pub input_p: f64,
-    pub alpha: f64,
-    pub top_k: usize,
-    pub group_names: &'a [String],
-    pub steps: usize,
-    /// "zero-filled inputs" and the like.
-    pub deletion_inputs: String,
-    /// The smallest `p_combined` the profile can give.
-    pub p_floor: f64,
-}
-
-/// The score, its verdict, the reasons and the evidence behind them.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Assessment {
-    pub reliability: f64,
-    pub verdict: Verdict,
-    pub reasons: Vec<String>,
-    pub evidence: Evidence,
-}
-
-fn excess(rate: f64, alpha: f64) -> f64 {
+/// `excess(r)`: the off-manifold share beyond what α lets through.
+pub fn excess(rate: f64, alpha: f64) -> f64 {
     ((rate - alpha) / (1.0 - alpha)).clamp(0.0, 1.0)
 }
 
-/// The three terms of a family's severity: the excess off-manifold share, the excess
-/// detectability over replacement's, and how much less typical than replacement's its
-/// inputs are (module docs).
-fn severity_terms(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> [f64; 3] {
-    let r = &findings.families.replacement;
-    let detect = match auc {
-        Some(a) => (2.0 * (a - r.detectability_auc.unwrap_or(0.5).max(0.5))).clamp(0.0, 1.0),
+/// The three terms of `sev`: the excess off-manifold share, the excess detectability over
+/// the replacement family's, and how much less typical than its inputs they are.
+pub fn severity_terms(family: &Departure, replacement: &Departure, alpha: f64) -> [f64; 3] {
+    let detect = match family.detectability_auc {
+        Some(a) => {
+            (2.0 * (a - replacement.detectability_auc.unwrap_or(0.5).max(0.5))).clamp(0.0, 1.0)
+        }
         None => 0.0,
     };
-    let typical = (1.0 - median_p / r.median_p.max(findings.alpha)).clamp(0.0, 1.0);
-    [excess(rate, findings.alpha), detect, typical]
+    let typical = (1.0 - family.median_p / replacement.median_p.max(alpha)).clamp(0.0, 1.0);
+    [excess(family.off_manifold_rate, alpha), detect, typical]
 }
 
-fn severity(rate: f64, median_p: f64, auc: Option<f64>, findings: &Findings<'_>) -> f64 {
-    let [a, b, c] = severity_terms(rate, median_p, auc, findings);
+/// `sev`: how far a family's inputs leave the data, in [0, 1].
+pub fn severity(family: &Departure, replacement: &Departure, alpha: f64) -> f64 {
+    let [a, b, c] = severity_terms(family, replacement, alpha);
     a.max(b).max(c)
 }
 
-fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
+/// The story comparison of the subject with the on-data evidence.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Story {
+    /// `U`: share of the credit on groups the model does not move with on the data.
+    pub unused_credit: f64,
+    /// Groups with more than half their credit unsupported, largest credit first.
+    pub unused_groups: Vec<usize>,
+    /// `F`: share of the top groups' credit whose sign the data contradicts.
+    pub sign_flips: f64,
+    pub flipped_groups: Vec<usize>,
+    /// `K`: share of the on-data top-k effect the subject's top groups miss.
+    pub top_k_miss: f64,
+    /// The subject's top groups (`T`) and the on-data top-k.
+    pub subject_top: Vec<usize>,
+    pub on_data_top: Vec<usize>,
+    /// Share of the credit on groups without on-data probes.
+    pub unknown_credit: f64,
+    /// `D`.
+    pub disagreement: f64,
+}
+
+/// Compares the subject's attribution with the on-data effects (module docs, [`FORMULA`]).
+#[allow(clippy::needless_range_loop)]
+pub fn story(subject: &[f64], errors: &[f64], on_data: &OnDataEvidence, top_k: usize) -> Story {
+    let m = subject.len();
+    let total: f64 = subject.iter().map(|v| v.abs()).sum();
+    if total == 0.0 {
+        return Story::default();
+    }
+    let share: Vec<f64> = (0..m)
+        .map(|g| (subject[g].abs() - 2.0 * errors[g]).max(0.0) / total)
+        .collect();
+    let effect_total: f64 = on_data.effect.iter().flatten().map(|v| v.abs()).sum();
+    let mut story = Story::default();
+    let mut unused: Vec<(usize, f64)> = Vec::new();
+    for g in 0..m {
+        match (on_data.effect[g], on_data.effect_standard_errors[g]) {
+            (Some(e), Some(se)) => {
+                let on_data_share = if effect_total > 0.0 {
+                    (e.abs() + 2.0 * se) / effect_total
+                } else if se > 0.0 {
+                    1.0
+                } else {
+                    0.0
+                };
+                if share[g] > 0.0 {
+                    let support = on_data_share / share[g];
+                    let lack = ((0.25 - support) / 0.2).clamp(0.0, 1.0);
+                    story.unused_credit += share[g] * lack;
+                    if lack > 0.5 {
+                        unused.push((g, share[g]));
+                    }
+                }
+            }
+            _ => story.unknown_credit += share[g],
+        }
+    }
+    unused.sort_by(|a, b| b.1.total_cmp(&a.1));
+    story.unused_groups = unused.into_iter().map(|(g, _)| g).collect();
+
+    story.subject_top = super::agreement::top_k(subject, top_k)
+        .into_iter()
+        .filter(|&g| share[g] >= TOP_SHARE)
+        .collect();
+    let top_credit: f64 = story.subject_top.iter().map(|&g| share[g]).sum();
+    let mut flipped = 0.0;
+    for &g in &story.subject_top {
+        if let (Some(e), Some(se)) = (on_data.effect[g], on_data.effect_standard_errors[g]) {
+            if e.abs() > 2.0 * se && e.signum() != subject[g].signum() {
+                flipped += share[g];
+                story.flipped_groups.push(g);
+            }
+        }
+    }
+    if top_credit > 0.0 {
+        story.sign_flips = flipped / top_credit;
+    }
+    let effects: Vec<f64> = on_data.effect.iter().map(|e| e.unwrap_or(0.0)).collect();
+    story.on_data_top = super::agreement::top_k(&effects, top_k);
+    let best: f64 = story.on_data_top.iter().map(|&g| effects[g].abs()).sum();
+    if best > 0.0 && !story.subject_top.is_empty() {
+        let caught: f64 = story.subject_top.iter().map(|&g| effects[g].abs()).sum();
+        story.top_k_miss = (1.0 - caught / best).clamp(0.0, 1.0);
+    }
+    let k_term = ((story.top_k_miss - 0.25) / 0.5).clamp(0.0, 1.0);
+    story.disagreement = (1.0
+        - (1.0 - story.unused_credit.clamp(0.0, 1.0)) * (1.0 - story.sign_flips) * (1.0 - k_term))
+        .clamp(0.0, 1.0);
+    story
+}
+
+/// `P_story`.
+pub fn story_penalty(story: &Story, severity: f64) -> f64 {
+    ((2.0 * story.disagreement).min(1.0) * (0.5 + 0.5 * severity)).clamp(0.0, 1.0)
+}
+
+/// `P_evidence`.
+pub fn evidence_penalty(story: &Story) -> f64 {
+    (0.5 * story.unknown_credit).clamp(0.0, 1.0)
+}
+
+/// `u`: the relative standard error `‖se‖ / ‖a‖` (1 when the attribution is zero and
+/// the errors are not).
+pub fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
     let size = values.iter().map(|v| v * v).sum::<f64>().sqrt();
     let noise = errors.iter().map(|e| e * e).sum::<f64>().sqrt();
     if size > 0.0 {
@@ -197,244 +225,114 @@ fn relative_error(values: &[f64], errors: &[f64]) -> f64 {
     }
 }
 
-/// Disagreement of attribution `a` with the in-distribution attribution `b`, in [0, 1]:
-/// the share of normalised attribution mass that moves between them beyond their joint
-/// sampling noise (module docs).
-pub fn disagreement(a: &[f64], se_a: &[f64], b: &[f64], se_b: &[f64]) -> f64 {
-    let norm_a: f64 = a.iter().map(|v| v.abs()).sum();
-    let norm_b: f64 = b.iter().map(|v| v.abs()).sum();
-    match (norm_a > 0.0, norm_b > 0.0) {
-        (false, false) => return 0.0,
-        (true, false) | (false, true) => return 1.0,
-        (true, true) => {}
+/// `P_uncertainty`.
+pub fn uncertainty_penalty(u: f64) -> f64 {
+    0.5 * ((u - 0.25) / 0.75).clamp(0.0, 1.0)
+}
+
+/// `L`: the supplied attribution's distance from the recomputation of its declared
+/// method, relative to the recomputation's size.
+pub fn declared_distance(supplied: &[f64], twin: &[f64]) -> f64 {
+    let size: f64 = twin.iter().map(|v| v.abs()).sum();
+    let gap: f64 = supplied.iter().zip(twin).map(|(a, b)| (a - b).abs()).sum();
+    if size > 0.0 {
+        gap / size
+    } else if gap > 0.0 {
+        1.0
+    } else {
+        0.0
     }
-    let moved: f64 = (0..a.len())
-        .map(|g| {
-            let noise = 2.0 * ((se_a[g] / norm_a).powi(2) + (se_b[g] / norm_b).powi(2)).sqrt();
-            ((a[g] / norm_a - b[g] / norm_b).abs() - noise).max(0.0)
-        })
-        .sum();
-    (moved / 2.0).clamp(0.0, 1.0)
 }
 
-fn percent(v: f64) -> String {
-    format!("{:.0}%", 100.0 * v)
+/// `P_declared`.
+pub fn declared_penalty(distance: f64) -> f64 {
+    0.5 * ((distance - 0.5) / 0.5).clamp(0.0, 1.0)
 }
 
-fn top_names(values: &[f64], k: usize, names: &[String]) -> String {
-    super::agreement::top_k(values, k)
-        .iter()
-        .map(|&g| names[g].as_str())
-        .collect::<Vec<_>>()
-        .join(", ")
-}
-
-/// Weighs the evidence of one row.
-pub fn assess(findings: &Findings<'_>) -> Assessment {
-    let f = findings.families;
-    let (d, r, i) = (&f.deletion, &f.replacement, &f.interpolation);
-    let alpha = findings.alpha;
-    let k = findings.top_k;
-    let names = findings.group_names;
-
-    let deletion_severity = severity(
-        d.off_manifold_rate,
-        d.median_p,
-        d.detectability_auc,
-        findings,
-    );
-    let interpolation_severity = severity(
-        i.off_manifold_rate,
-        i.median_p,
-        i.detectability_auc,
-        findings,
-    );
-    let dr: &Agreement = &findings.agreement.deletion_replacement;
-    let ir: &Agreement = &findings.agreement.replacement_interpolation;
-    let deletion_disagreement = disagreement(
-        &d.attribution,
-        &d.standard_errors,
-        &r.attribution,
-        &r.standard_errors,
-    );
-    let no_errors = vec![0.0; i.attribution.len()];
-    let interpolation_disagreement = disagreement(
-        &i.attribution,
-        &no_errors,
-        &r.attribution,
-        &r.standard_errors,
-    );
-    let uncertainty = relative_error(&d.attribution, &d.standard_errors)
-        .max(relative_error(&r.attribution, &r.standard_errors));
-
-    let deletion_penalty = deletion_severity * deletion_disagreement.sqrt();
-    let answer_penalty = 0.5 * deletion_severity * findings.answer_gap;
-    let interpolation_penalty = interpolation_severity * interpolation_disagreement.sqrt();
-    let completeness_penalty = 0.5 * ((i.completeness_gap - 0.01) / 0.24).clamp(0.0, 1.0);
-    let replacement_penalty = 0.5 * excess(r.off_manifold_rate, alpha);
-    let uncertainty_penalty = 0.5 * ((uncertainty - 0.25) / 0.75).clamp(0.0, 1.0);
-    let supplied_penalty = findings
-        .supplied_values
-        .map(|values| disagreement(values, &no_errors, &r.attribution, &r.standard_errors));
-
-    // Lead with the evidence that counted most, then give the other two measures.
-    let unlike = |noun: &str, rate: f64, median_p: f64, auc: Option<f64>| {
-        let [share, detect, typical] = severity_terms(rate, median_p, auc, findings);
-        let auc_text = auc.map_or(String::new(), |a| {
-            format!(
-                "a classifier tells them from reference rows with AUC {a:.2} (inputs drawn from \
-                 the data: {:.2})",
-                r.detectability_auc.unwrap_or(0.5)
-            )
-        });
-        let share_text = format!("{} of them fall outside it at p < {alpha}", percent(rate));
-        let median_text = format!(
-            "their median p is {median_p:.3} against {:.3} for inputs drawn from the data",
-            r.median_p
-        );
-        let mut text = if share >= detect && share >= typical {
-            let mut t = format!(
-                "{} of the {noun} fall outside the reference data (p < {alpha}); {median_text}",
-                percent(rate)
-            );
-            if !auc_text.is_empty() {
-                t.push_str(&format!("; {auc_text}"));
-            }
-            t
-        } else if detect >= typical {
-            format!("the {noun} are easy to tell from the reference data: {auc_text}; {share_text}")
-        } else {
-            let mut t = format!(
-                "the {noun} are less typical of the reference data than inputs drawn from it: \
-                 {median_text}; {share_text}"
-            );
-            if !auc_text.is_empty() {
-                t.push_str(&format!("; {auc_text}"));
-            }
-            t
-        };
-        if rate == 0.0 && findings.p_floor >= alpha {
-            text.push_str(&format!(
-                " (no input can reach p < {alpha} against this profile: its smallest p is \
-                 {:.3}; fit with more calibration rows)",
-                findings.p_floor
-            ));
-        }
-        text
-    };
-    let mut reasons: Vec<(f64, String)> = Vec::new();
-    reasons.push((
-        deletion_penalty,
-        format!(
-            "{}; their attribution disagrees with the one from inputs drawn from the data \
-             (Spearman {:.2}; top {k}: {} under deletion, {} under replacement)",
-            unlike(
-                &findings.deletion_inputs,
-                d.off_manifold_rate,
-                d.median_p,
-                d.detectability_auc
-            ),
-            dr.spearman,
-            top_names(&d.attribution, k, names),
-            top_names(&r.attribution, k, names),
-        ),
-    ));
-    reasons.push((
-        answer_penalty,
-        format!(
-            "the model answers the same masks differently on {} than on inputs drawn from \
-             the data (mean gap {} of its span): it reacts to the fill itself",
-            findings.deletion_inputs,
-            percent(findings.answer_gap)
-        ),
-    ));
-    reasons.push((
-        interpolation_penalty,
-        format!(
-            "{}; the path's attribution disagrees with the in-distribution one (Spearman \
-             {:.2}; top {k}: {} on the path, {} under replacement)",
-            unlike(
-                &format!(
-                    "integrated-gradients path points from the {} baseline",
-                    i.baseline
-                ),
-                i.off_manifold_rate,
-                i.median_p,
-                i.detectability_auc
-            ),
-            ir.spearman,
-            top_names(&i.attribution, k, names),
-            top_names(&r.attribution, k, names),
-        ),
-    ));
-    reasons.push((
-        completeness_penalty,
-        format!(
-            "integrated gradients miss completeness by {:.1}% with {} steps; raise --steps \
-             or use --rule gauss-legendre",
-            100.0 * i.completeness_gap,
-            findings.steps
-        ),
-    ));
-    reasons.push((
-        replacement_penalty,
-        format!(
-            "{} of the inputs drawn from the data still fall outside it (the input's own p is \
-             {:.3}): the in-distribution evidence is weak for this row",
-            percent(r.off_manifold_rate),
-            findings.input_p
-        ),
-    ));
-    reasons.push((
-        uncertainty_penalty,
-        format!(
-            "the masking attributions are uncertain (standard errors {} of their size); \
-             raise {}",
-            percent(uncertainty),
-            if d.exhaustive && r.exhaustive {
-                "--draws (every mask is already evaluated)"
-            } else {
-                "--samples and --draws"
-            }
-        ),
-    ));
-    if let (Some(p), Some(s)) = (supplied_penalty, findings.supplied) {
-        reasons.push((
-            p,
-            format!(
-                "the supplied explanation disagrees with the in-distribution attribution \
-                 (Spearman {:.2}, top-{k} overlap {:.2}, signs agree on {})",
-                s.replacement.spearman,
-                s.replacement.top_k_overlap,
-                percent(s.replacement.sign_agreement)
-            ),
-        ));
-    }
-    let reliability = reasons
-        .iter()
-        .map(|(p, _)| 1.0 - p.clamp(0.0, 1.0))
+/// The product of `1 - P` over the penalties, in [0, 1].
+pub fn reliability(penalties: impl IntoIterator<Item = f64>) -> f64 {
+    penalties
+        .into_iter()
+        .map(|p| 1.0 - p.clamp(0.0, 1.0))
         .product::<f64>()
-        .clamp(0.0, 1.0);
-    reasons.retain(|(p, _)| *p >= REASON_FROM);
-    reasons.sort_by(|a, b| b.0.total_cmp(&a.0));
-    Assessment {
-        reliability,
-        verdict: Verdict::for_score(reliability),
-        reasons: reasons.into_iter().map(|(_, s)| s).collect(),
-        evidence: Evidence {
-            deletion_severity,
-            interpolation_severity,
-            deletion_disagreement,
-            interpolation_disagreement,
-            answer_gap: findings.answer_gap,
-            uncertainty,
-            deletion_penalty,
-            answer_penalty,
-            interpolation_penalty,
-            completeness_penalty,
-            replacement_penalty,
-            uncertainty_penalty,
-            supplied_penalty,
-        },
+        .clamp(0.0, 1.0)
+}
+
+/// Sets to exactly zero the attributions within round-off of zero, so that exact zeros
+/// stay ties: `|a_g| ≤ ZERO_SNAP · scale`, with `scale` the largest model score or
+/// attribution magnitude involved.
+pub fn snap_zeros(values: &mut [f64], scale: f64) {
+    let scale = values.iter().fold(scale.abs(), |m, v| m.max(v.abs()));
+    for v in values.iter_mut() {
+        if v.abs() <= ZERO_SNAP * scale {
+            *v = 0.0;
+        }
+    }
+}
+
+/// Relative round-off bound below which an attribution is zero (about 2¹⁰ units in the
+/// last place: the least-squares solve and the sums behind an attribution lose a few
+/// hundred at most).
+pub const ZERO_SNAP: f64 = 1024.0 * f64::EPSILON;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn evidence(effect: &[f64]) -> OnDataEvidence {
+        OnDataEvidence {
+            usage: effect.iter().map(|e| Some(e.abs())).collect(),
+            effect: effect.iter().map(|&e| Some(e)).collect(),
+            effect_standard_errors: vec![Some(0.0); effect.len()],
+            probes_on_data: vec![32; effect.len()],
+            probes_per_group: 32,
+        }
+    }
+
+    /// By construction: a subject equal to the on-data effects tells the same story; one
+    /// that credits a group without on-data effect, or flips the top sign, does not.
+    #[test]
+    fn the_story_measures_follow_their_definitions() {
+        let zero = [0.0; 4];
+        let same = story(
+            &[3.0, -2.0, 1.0, 0.0],
+            &zero,
+            &evidence(&[3.0, -2.0, 1.0, 0.0]),
+            2,
+        );
+        assert_eq!(same.disagreement, 0.0);
+        // Half the credit on group 3, which the model does not use on the data.
+        let unused = story(
+            &[3.0, -2.0, 0.0, 5.0],
+            &zero,
+            &evidence(&[3.0, -2.0, 1.0, 0.0]),
+            2,
+        );
+        assert!((unused.unused_credit - 0.5).abs() < 1e-12);
+        assert_eq!(unused.unused_groups, vec![3]);
+        // The top group's sign is opposite on the data: 3 / (3 + 2) of the top credit.
+        let flipped = story(
+            &[-3.0, -2.0, 1.0, 0.0],
+            &zero,
+            &evidence(&[3.0, -2.0, 1.0, 0.0]),
+            2,
+        );
+        assert!((flipped.sign_flips - 0.6).abs() < 1e-12);
+        assert_eq!(flipped.flipped_groups, vec![0]);
+        // Scale does not matter.
+        let scaled = story(
+            &[30.0, -20.0, 10.0, 0.0],
+            &zero,
+            &evidence(&[3.0, -2.0, 1.0, 0.0]),
+            2,
+        );
+        assert_eq!(scaled.disagreement, 0.0);
+    }
+
+    #[test]
+    fn round_off_snaps_to_zero_and_real_values_stay() {
+        let mut a = [1.0, 2e-16, -3e-17, 1e-9];
+        snap_zeros(&mut a, 1.0);
+        assert_eq!(a, [1.0, 0.0, 0.0, 1e-9]);
     }
 }

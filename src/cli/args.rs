@@ -237,9 +237,14 @@ pub struct AuditArgs {
     /// or zero, mean, median, constant:V, nearest, uniform:N, reference:N, blur:S.
     #[arg(long, default_value = "best", value_name = "NAME")]
     pub baseline: String,
-    /// What deletion sets masked groups to: zero, mean, or a number.
-    #[arg(long, default_value = "zero", value_name = "zero|mean|VALUE")]
+    /// What deletion sets masked groups to: zero, mean, median, or a number.
+    #[arg(long, default_value = "zero", value_name = "zero|mean|median|VALUE")]
     pub fill: String,
+    /// How the supplied explanations were made, so kilter recomputes that method:
+    /// occlusion:FILL, surrogate:FILL, shapley:SAMPLER, shapley:FILL or
+    /// integrated-gradients:BASELINE. It sets --fill, --sampler or --baseline to match.
+    #[arg(long, value_name = "METHOD", requires = "explanations")]
+    pub method: Option<String>,
     /// Exit with status 3 if any row's reliability is below R (records are still written).
     #[arg(long = "fail-under", value_name = "R")]
     pub fail_under: Option<f64>,

@@ -110,12 +110,13 @@ pub fn attribution_settings(
 }
 
 fn settings(args: &AuditArgs, image: Option<ImageShape>) -> Result<AuditSettings> {
-    let settings = attribution_settings(
+    let mut settings = attribution_settings(
         &args.attribution,
         image,
         BaselineChoice::parse(&args.baseline, image.is_some())?,
         args.fill.parse()?,
     )?;
+    settings.method = args.method.as_deref().map(str::parse).transpose()?;
     if let Some(bar) = args.fail_under {
         if !(0.0..=1.0).contains(&bar) {
             return Err(Error::InvalidSetting {
@@ -320,6 +321,8 @@ pub fn settings_line(auditor: &Auditor<'_>) -> String {
 struct Summary {
     all: Vec<(f64, usize, String)>,
     counts: [usize; 3],
+    /// What the verdicts judge.
+    subject: String,
 }
 
 impl Summary {
@@ -330,6 +333,11 @@ impl Summary {
             Verdict::Unreliable => 2,
         };
         self.counts[slot] += 1;
+        self.subject = match (record.subject.as_str(), &record.method) {
+            ("supplied", Some(method)) => format!("the supplied explanations (declared {method})"),
+            ("supplied", None) => "the supplied explanations (method not declared)".into(),
+            (_, _) => format!("kilter's deletion recomputation ({})", auditor_fill(record)),
+        };
         self.all.push((
             record.reliability,
             record.row,
@@ -348,6 +356,7 @@ impl Summary {
             self.counts[1],
             self.counts[2]
         );
+        let _ = writeln!(stderr, "  judged: {}", self.subject);
         let _ = writeln!(stderr, "  {}", settings_line(auditor));
         let mut worst: Vec<&(f64, usize, String)> = self.all.iter().collect();
         worst.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
@@ -360,4 +369,9 @@ impl Summary {
         }
         let _ = writeln!(stderr, "  {}", kilter::report::CAUTION);
     }
+}
+
+/// The deletion fill a record's verdict judges.
+fn auditor_fill(record: &AuditRecord) -> String {
+    format!("fill {}", record.families.deletion.fill)
 }

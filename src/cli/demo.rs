@@ -24,8 +24,8 @@ use kilter::perturbation::FillValue;
 use kilter::profile::{Profile, ProfileSettings};
 use kilter::report::{AuditSection, BaselineSection, Report};
 use kilter::scenario::{
-    failure_history, pipe_segments, pipe_segments_in_zone, train_network, FEATURES, HEAD_MEAN,
-    HEAD_SD,
+    failure_history, pipe_segments, pipe_segments_in_zone, train_network, FaultFallback, FEATURES,
+    HEAD_MEAN, HEAD_SD,
 };
 use kilter::{Error, Result};
 
@@ -103,11 +103,25 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
         target: Some(1),
         ..AuditSettings::default()
     };
-    let auditor = Auditor::new(&profile, &model, groups.clone(), settings)?;
+    let auditor = Auditor::new(&profile, &model, groups.clone(), settings.clone())?;
     let audits: Vec<AuditRecord> = (0..new.rows())
         .map(|r| auditor.audit_row(r, new.values.row(r), None))
         .collect::<Result<_>>()?;
     write_records(&dir.join("pipe-audit.jsonl"), &audits)?;
+    // The vendor's copy: the same network behind a sensor-fault fallback that no real
+    // segment triggers (checked on the reference rows).
+    let vendor = FaultFallback {
+        network: NetworkModel::load(&network_path)?,
+        pivot_temperature: mean[8],
+    };
+    let faults = (0..reference.rows())
+        .filter(|&r| FaultFallback::<NetworkModel>::is_fault(reference.values.row(r)))
+        .count();
+    let vendor_auditor = Auditor::new(&profile, &vendor, groups.clone(), settings)?;
+    let vendor_audits: Vec<AuditRecord> = (0..new.rows())
+        .map(|r| vendor_auditor.audit_row(r, new.values.row(r), None))
+        .collect::<Result<_>>()?;
+    write_records(&dir.join("pipe-audit-vendor.jsonl"), &vendor_audits)?;
     let candidates = default_candidates(false);
     let baselines: Vec<BaselineRecord> = (0..new.rows())
         .map(|r| auditor.baseline_row(r, new.values.row(r), &candidates))
@@ -193,6 +207,14 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
             labels: Some(&ids),
             image: None,
         })
+        .audit(&AuditSection {
+            title: "Pipe segments: the vendor's copy with a sensor-fault fallback".into(),
+            settings: settings_line(&vendor_auditor),
+            groups: &groups,
+            records: &vendor_audits,
+            labels: Some(&ids),
+            image: None,
+        })
         .baselines(&BaselineSection {
             title: "Pipe segments: baselines for integrated gradients".into(),
             settings: format!("{} candidates", candidates.len()),
@@ -213,7 +235,7 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
     print_summary(
         dir,
         &ids,
-        &audits,
+        (&audits, &vendor_audits, faults),
         &digit_ids,
         &digit_audits,
         &report_path,
@@ -226,7 +248,7 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
 fn print_summary(
     dir: &Path,
     ids: &[String],
-    audits: &[AuditRecord],
+    (audits, vendor_audits, faults): (&[AuditRecord], &[AuditRecord], usize),
     digit_ids: &[String],
     digit_audits: &[AuditRecord],
     report: &Path,
@@ -238,11 +260,22 @@ fn print_summary(
         "The network was trained on {HISTORY_ROWS} invented segments. Each new segment's \
          explanation was computed three ways: deletion (masked readings set to the network's \
          average), replacement (masked readings drawn from the data given the others) and \
-         integrated gradients. Segments from unusually high or low pressure zones were built \
-         so that filling one pressure with the average fakes a pressure drop no real segment has."
+         integrated gradients; the verdict judges deletion. Segments from unusually high or \
+         low pressure zones were built so that filling one pressure with the average fakes a \
+         pressure drop no real segment has: the masked inputs leave the data, but the network \
+         answers them as its behaviour on real segments predicts, so the story holds."
     );
     println!();
     table(ids, audits);
+    println!();
+    println!(
+        "The vendor's copy: the same network behind a sensor-fault fallback (pressures that \
+         contradict the flow make it answer from a seasonal rule on water temperature alone; {faults} of the \
+         {HISTORY_ROWS} real segments trigger it). Filling a pressure with the average \
+         triggers it, so deletion credits water temperature, which the network hardly uses on \
+         real segments:"
+    );
+    table(ids, vendor_audits);
     println!();
     println!("Digits (open 8 x 8 corpus), is this a 3?, 2 x 2 patches, deletion to black:");
     table(digit_ids, digit_audits);
@@ -255,15 +288,18 @@ fn print_summary(
             .count()
     };
     println!(
-        "typical segments: {} reliable of {TYPICAL}; zone segments built to mislead: {} unreliable of {}",
+        "typical segments: {} reliable of {TYPICAL}; zone segments, network: {} reliable of {}; \
+         zone segments, vendor's copy: {} unreliable of {}",
         count(audits, false, Verdict::Reliable),
-        count(audits, true, Verdict::Unreliable),
+        count(audits, true, Verdict::Reliable),
+        2 * PER_ZONE,
+        count(vendor_audits, true, Verdict::Unreliable),
         2 * PER_ZONE
     );
     println!("report: {}", report.display());
     println!(
         "files in {}: reference.csv, segments.csv, pipe_risk_network.json, pipes.kprofile, \
-         pipe-audit.jsonl, pipe-baselines.jsonl, digits.csv, digit_three_network.json, \
+         pipe-audit.jsonl, pipe-audit-vendor.jsonl, pipe-baselines.jsonl, digits.csv, digit_three_network.json, \
          digits.kprofile, digit-audit.jsonl, report.html",
         dir.display()
     );
@@ -278,10 +314,9 @@ fn table(ids: &[String], records: &[AuditRecord]) {
         "input", "prediction", "reliability", "verdict"
     );
     for (r, id) in records.iter().zip(ids) {
-        let finding = match (r.evidence.main_finding(), r.verdict) {
-            (None, _) => "nothing lowered the score".to_string(),
-            (Some(title), Verdict::Reliable) => format!("minor: {title}"),
-            (Some(title), _) => title.to_string(),
+        let finding = match r.findings.first() {
+            None => "nothing to report".to_string(),
+            Some(f) => format!("{}: {}", f.severity.as_str(), f.title),
         };
         println!(
             "  {:<28} {:>10.3} {:>11.2}  {:<10}  {finding}",

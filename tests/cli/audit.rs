@@ -191,9 +191,11 @@ fn a_linear_model_on_independent_features_is_reliable() {
 }
 
 #[test]
-fn too_few_draws_are_reported_as_uncertainty_not_disagreement() {
-    // The same linear case with 2 marginal draws per mask: the noise is reported, with the
-    // flag that cures it, and the deletion attribution is not called into question.
+fn replacement_noise_does_not_touch_the_verdict_on_deletion() {
+    // The same linear case with 2 marginal draws per mask: replacement is noisy, but the
+    // verdict judges deletion (exact here: every mask is evaluated), whose story is the
+    // model's own on the data (for a linear model the on-data effect equals the occlusion
+    // attribution w_g (x_g - c_g); by construction).
     let dir = temp_dir();
     let (names, values) = breast_cancer_columns(6, true);
     let queries = values.slice(ndarray::s![..12, ..]).to_owned();
@@ -219,14 +221,20 @@ fn too_few_draws_are_reported_as_uncertainty_not_disagreement() {
     )
     .expect_status(0);
     let records = read_audit(&dir.path().join("a.jsonl"));
-    let noisy = records
-        .iter()
-        .filter(|r| r.reasons.iter().any(|s| s.contains("raise --draws")))
-        .count();
-    assert!(noisy >= 1, "no row reported its noise");
     for r in &records {
+        assert_eq!(r.subject, "deletion");
         assert!(
-            r.evidence.deletion_penalty < 0.2,
+            r.evidence.story_penalty < 0.02,
+            "row {}: {:?}",
+            r.row,
+            r.reasons
+        );
+        // The unused feature gets exactly zero from deletion and from the probes.
+        assert_eq!(r.families.deletion.attribution[3], 0.0, "row {}", r.row);
+        assert_eq!(r.on_data.effect[3], Some(0.0), "row {}", r.row);
+        assert_eq!(
+            r.verdict,
+            Verdict::Reliable,
             "row {}: {:?}",
             r.row,
             r.reasons

@@ -47,15 +47,18 @@ fn the_demo_finds_what_it_was_built_to_show() {
         }
     }
     assert_eq!((misleading.len(), typical.len()), (8, 8));
+    // The network is the same function on and off the data: its zone segments' masked
+    // inputs leave the data, but the story holds there (by construction of the scenario).
     for (id, r) in &misleading {
+        assert!(r.families.deletion.off_manifold_rate > 0.3, "{id}");
+        assert_eq!(r.subject, "deletion", "{id}");
         assert_ne!(
             r.verdict,
-            Verdict::Reliable,
+            Verdict::Unreliable,
             "{id}: {:.2} {:?}",
             r.reliability,
             r.reasons
         );
-        assert!(r.families.deletion.off_manifold_rate > 0.3, "{id}");
     }
     for (id, r) in &typical {
         assert_ne!(
@@ -71,13 +74,36 @@ fn the_demo_finds_what_it_was_built_to_show() {
         rows.iter().filter(|(_, r)| r.verdict == v).count()
     };
     assert!(
-        count(&misleading, Verdict::Unreliable) >= 6,
-        "most zone segments unreliable"
+        count(&misleading, Verdict::Reliable) >= 6,
+        "most zone segments' stories hold"
     );
     assert!(
         count(&typical, Verdict::Reliable) >= 6,
         "most typical segments reliable"
     );
+    // The vendor's copy answers off the data from water temperature (Slack et al., AIES
+    // 2020): on zone segments, where mean-filling a pressure triggers its fallback, most
+    // explanations are flagged, each by a story finding.
+    let vendor: Vec<AuditRecord> = read_records(&out.join("pipe-audit-vendor.jsonl"));
+    let flagged: Vec<&AuditRecord> = vendor
+        .iter()
+        .zip(&ids)
+        .filter(|(r, id)| id.contains("zone") && r.verdict != Verdict::Reliable)
+        .map(|(r, _)| r)
+        .collect();
+    assert!(
+        flagged.len() >= 4,
+        "{} zone segments flagged",
+        flagged.len()
+    );
+    for r in flagged {
+        let code = r.findings[0].code.as_str();
+        assert!(
+            ["unused-credit", "sign-flip", "top-groups-differ"].contains(&code),
+            "row {}: {code}",
+            r.row
+        );
+    }
 
     let baselines: Vec<BaselineRecord> = read_records(&out.join("pipe-baselines.jsonl"));
     assert_eq!(baselines.len(), ids.len());

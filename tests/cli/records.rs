@@ -144,3 +144,13 @@ fn bad_output_paths_are_refused_before_any_work() {
     expected.sort();
     assert_eq!(listing(dir.path()), expected, "no stray files");
 }
+
+/// The README prints the reliability formula; the code's own text of it is the source.
+#[test]
+fn the_readme_prints_the_reliability_formula_the_code_states() {
+    let readme = std::fs::read_to_string(repo("README.md")).unwrap();
+    assert!(
+        readme.contains(kilter::audit::reliability::FORMULA),
+        "README.md's reliability formula differs from kilter::audit::reliability::FORMULA"
+    );
+}
