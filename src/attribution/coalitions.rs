@@ -8,7 +8,12 @@
 //! proportion to their total kernel weight `(M - 1) / (s (M - s))`, a uniform coalition of
 //! that size, and its complement beside it (paired draws, which cancel the odd-order
 //! error terms), each with weight 1. The empty and full coalitions are not sampled: they
-//! enter the estimate as the constraint.
+//! enter the estimate as the constraint. A sampled design lists each drawn coalition
+//! followed by its complement, so coalitions `2j` and `2j + 1` are the j-th of its
+//! independent, identically distributed draws ([`CoalitionDesign::sampled_pairs`]): the
+//! unit over which the estimator measures its own sampling variance.
+
+use std::ops::Range;
 
 use rand::seq::index::sample;
 use rand::Rng;
@@ -105,6 +110,18 @@ impl CoalitionDesign {
     pub fn is_exhaustive(&self) -> bool {
         self.exhaustive
     }
+
+    /// The independent draws of a sampled design, as ranges of coalition indices: a
+    /// coalition and its complement, in the order they were drawn. An enumerated design
+    /// draws nothing and has none.
+    pub fn sampled_pairs(&self) -> impl ExactSizeIterator<Item = Range<usize>> + '_ {
+        let pairs = if self.exhaustive {
+            0
+        } else {
+            self.kept.len() / 2
+        };
+        (0..pairs).map(|j| 2 * j..2 * j + 2)
+    }
 }
 
 fn binomial(n: usize, k: usize) -> f64 {
@@ -126,7 +143,9 @@ mod tests {
         let large = CoalitionDesign::shapley_kernel(20, 200, &mut rng);
         assert!(!large.is_exhaustive());
         assert_eq!(large.coalitions().len(), 200);
-        for pair in large.coalitions().chunks(2) {
+        assert_eq!(small.sampled_pairs().len(), 0);
+        assert_eq!(large.sampled_pairs().len(), 100);
+        for pair in large.sampled_pairs().map(|r| &large.coalitions()[r]) {
             assert!(
                 pair[0].iter().zip(&pair[1]).all(|(a, b)| a != b),
                 "complements"

@@ -9,9 +9,13 @@
 //!
 //! Each mask's draws are independent of the other masks'. The variance of each `v(S)` is
 //! estimated from its own draws (from the means of antithetic pairs, for a family that
-//! draws in pairs) and propagated into the Shapley values' standard errors
-//! ([`estimate_shapley_with_noise`]); summed over many masks, those rough per-mask
-//! estimates give a steady total.
+//! draws in pairs) and handed to [`estimate_shapley_with_noise`]. On an enumerated design
+//! the Shapley values' standard errors are those variances propagated through the linear
+//! estimator (summed over many masks, the rough per-mask estimates give a steady total);
+//! deletion's single exact fill gives 0. On a sampled design the standard errors are the
+//! spread of the estimate over the design's independent coalition-and-complement pairs,
+//! which holds both the draw of the masks and the noise of their values; only the empty
+//! coalition's variance, shared by every pair, is propagated on top of it.
 
 use ndarray::{Array2, ArrayView1};
 use rand_chacha::ChaCha8Rng;
