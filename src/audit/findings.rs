@@ -78,6 +78,10 @@ pub struct Evidence {
     pub sign_flips: f64,
     pub top_k_miss: f64,
     pub unchecked_credit: f64,
+    /// `M`: how far the credit shares move from the on-data shares.
+    pub magnitude_shift: f64,
+    /// `S`: how far the total credit is from the on-data effects' total (log ratio).
+    pub scale_shift: f64,
     pub story_disagreement: f64,
     /// `u` of the subject (0 for a supplied one).
     pub uncertainty: f64,
@@ -87,6 +91,8 @@ pub struct Evidence {
     pub evidence_penalty: f64,
     pub uncertainty_penalty: f64,
     pub declared_penalty: Option<f64>,
+    /// [`TARGET_PENALTY`] when the supplied values follow another output, else 0.
+    pub target_penalty: f64,
 }
 
 /// The explanation being judged and what it is checked against.
@@ -118,7 +124,22 @@ pub struct Context<'a> {
     pub input_p: f64,
     /// The smallest `p_combined` the profile can give.
     pub p_floor: f64,
+    /// A supplied explanation that follows another output far better than the target.
+    pub target_mismatch: Option<TargetMismatch>,
 }
+
+/// A supplied attribution that follows another output (`likely`) far better than the
+/// audited target, or for a single output (`likely` none) the target negated; Spearman
+/// correlations with each output's occlusion.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TargetMismatch {
+    pub likely: Option<usize>,
+    pub likely_spearman: f64,
+    pub own_spearman: f64,
+}
+
+/// The penalty of a likely wrong target: the explanation is of something else.
+pub const TARGET_PENALTY: f64 = 0.9;
 
 /// The score, its verdict, the findings and the evidence behind them.
 #[derive(Debug, Clone, PartialEq)]
@@ -225,11 +246,17 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
     let departure = departure_sentence(&s.inputs_phrase, &s.departure, &r, ctx);
     let effect = |g: usize| ctx.on_data.effect[g].unwrap_or(0.0);
     // The story finding is named after its largest part.
-    let k_term = ((story.top_k_miss - 0.25) / 0.5).clamp(0.0, 1.0);
-    let parts = [story.unused_credit, story.sign_flips, k_term];
-    let largest = (0..3)
+    let parts = story.parts();
+    let largest = (0..parts.len())
         .max_by(|&a, &b| parts[a].total_cmp(&parts[b]))
         .unwrap_or(0);
+    let shares = |values: &[f64]| {
+        let total: f64 = values.iter().map(|v| v.abs()).sum();
+        values
+            .iter()
+            .map(|v| if total > 0.0 { v / total } else { 0.0 })
+            .collect::<Vec<f64>>()
+    };
     if story_penalty >= REASON_FROM {
         let f = match largest {
             0 => {
@@ -284,6 +311,61 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
                         s.phrase,
                         s.reference_phrase,
                         shown.join(", ")
+                    ),
+                )
+            }
+            3 => {
+                let claimed = shares(s.attribution);
+                let effects: Vec<f64> = (0..all.len()).map(effect).collect();
+                let on_data = shares(&effects);
+                let mut moved: Vec<usize> = (0..all.len()).collect();
+                moved.sort_by(|&a, &b| {
+                    (claimed[b] - on_data[b])
+                        .abs()
+                        .total_cmp(&(claimed[a] - on_data[a]).abs())
+                });
+                moved.truncate(3);
+                let shown: Vec<String> = moved
+                    .iter()
+                    .map(|&g| {
+                        format!(
+                            "{} {} of the credit against {} of the on-data effect",
+                            all[g],
+                            percent(claimed[g]),
+                            percent(on_data[g])
+                        )
+                    })
+                    .collect();
+                finding(
+                    "credit-shares-differ",
+                    "credit shared unlike the on-data effects",
+                    story_penalty,
+                    names(&moved, all),
+                    format!(
+                        "{} shares its credit unlike the model's effects toward the {} on \
+                         data-like inputs ({} of the credit moved): {}; {departure}",
+                        s.phrase,
+                        s.reference_phrase,
+                        percent(story.magnitude_shift),
+                        shown.join(", ")
+                    ),
+                )
+            }
+            4 => {
+                let claimed: f64 = s.attribution.iter().map(|v| v.abs()).sum();
+                let on_data: f64 = (0..all.len()).map(|g| effect(g).abs()).sum();
+                finding(
+                    "scale-differs",
+                    "total credit unlike the on-data effects",
+                    story_penalty,
+                    Vec::new(),
+                    format!(
+                        "{}'s credit totals {claimed:.3} in absolute value, {:.1} times the \
+                         model's effects toward the {} on data-like inputs ({on_data:.3}); \
+                         {departure}",
+                        s.phrase,
+                        claimed / on_data.max(f64::MIN_POSITIVE),
+                        s.reference_phrase
                     ),
                 )
             }
@@ -402,6 +484,20 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
             ),
         ));
     }
+    if ctx.on_data.piecewise_constant {
+        findings.push(finding(
+            "piecewise-constant",
+            "piecewise-constant model",
+            0.0,
+            Vec::new(),
+            "the model answers like a piecewise-constant one (a tree ensemble): most steps \
+             of a group's move change nothing, so how much a far fill or baseline moves it \
+             cannot be read on the data; only credit to groups it ignores on the data and \
+             sign flips are scored, and integrated gradients, whose gradients vanish almost \
+             everywhere, do not apply"
+                .to_string(),
+        ));
+    }
     if ctx.families.replacement.off_manifold_rate > 0.5 {
         findings.push(finding(
             "replacement-off-data",
@@ -416,6 +512,29 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
             ),
         ));
     }
+    let target_penalty = ctx.target_mismatch.map_or(0.0, |_| TARGET_PENALTY);
+    if let Some(t) = ctx.target_mismatch {
+        let reason = match t.likely {
+            Some(o) => format!(
+                "the supplied values follow output {o} (Spearman {:.2} with its occlusion) far \
+                 better than the audited target (Spearman {:.2}): they were likely computed \
+                 for --target {o}",
+                t.likely_spearman, t.own_spearman
+            ),
+            None => format!(
+                "the supplied values run opposite to the model's output (Spearman {:.2} with \
+                 its occlusion): they were likely computed for the negated score",
+                t.own_spearman
+            ),
+        };
+        findings.push(finding(
+            "wrong-target",
+            "likely computed for another output",
+            target_penalty,
+            Vec::new(),
+            reason,
+        ));
+    }
     findings.sort_by(|a, b| b.penalty.total_cmp(&a.penalty));
 
     let penalties = [
@@ -423,6 +542,7 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
         evidence_penalty,
         uncertainty_penalty,
         declared_penalty.unwrap_or(0.0),
+        target_penalty,
     ];
     let reliability = score::reliability(penalties);
     Assessment {
@@ -435,6 +555,8 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
             sign_flips: story.sign_flips,
             top_k_miss: story.top_k_miss,
             unchecked_credit: story.unknown_credit,
+            magnitude_shift: story.magnitude_shift,
+            scale_shift: story.scale_shift,
             story_disagreement: story.disagreement,
             uncertainty,
             declared_distance,
@@ -442,6 +564,7 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
             evidence_penalty,
             uncertainty_penalty,
             declared_penalty,
+            target_penalty,
         },
     }
 }

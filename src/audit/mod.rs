@@ -204,6 +204,17 @@ impl<'a> Auditor<'a> {
         &self.settings
     }
 
+    /// Masks each row's design evaluates: every proper coalition when the budget covers
+    /// them, else `--samples`.
+    pub fn masks_per_row(&self) -> usize {
+        let m = self.groups.len();
+        if m < 63 && (1usize << m) - 2 <= self.settings.samples {
+            (1usize << m) - 2
+        } else {
+            self.settings.samples
+        }
+    }
+
     /// Description of the deletion fill.
     pub fn deletion_fill(&self) -> String {
         self.deletion.inputs_phrase()
@@ -299,12 +310,19 @@ impl<'a> Auditor<'a> {
             } else {
                 0.0
             };
-            e.record.score = baseline_score(
-                &e.record,
-                contrast,
-                alpha,
-                self.profile.smallest_p_combined(),
-            );
+            // A baseline the model scores like the input explains nothing: every path
+            // attribution sums to zero. It is never recommended over one that differs.
+            let scale = e.record.prediction_at_baseline.abs().max(e.contrast);
+            e.record.score = if e.contrast <= 1e-9 * scale.max(f64::MIN_POSITIVE) {
+                0.0
+            } else {
+                baseline_score(
+                    &e.record,
+                    contrast,
+                    alpha,
+                    self.profile.smallest_p_combined(),
+                )
+            };
         }
         // Stable: equal scores keep the order the candidates were given in.
         evaluations.sort_by(|a, b| b.record.score.total_cmp(&a.record.score));
@@ -608,6 +626,10 @@ impl<'a> Auditor<'a> {
         )?;
         let no_errors = vec![0.0; m];
         let method_name = self.settings.method.as_ref().map(|m| m.to_string());
+        let target_mismatch = match &supplied_values {
+            Some(values) => self.target_check(input, target, values)?,
+            None => None,
+        };
         let subject = match &supplied_values {
             Some(values) => Subject {
                 name: "supplied",
@@ -649,6 +671,7 @@ impl<'a> Auditor<'a> {
             group_names: self.groups.names(),
             input_p: p[0],
             p_floor: self.profile.smallest_p_combined(),
+            target_mismatch,
         });
         let reasons = assessment.reasons();
         Ok(AuditRecord {
@@ -668,6 +691,52 @@ impl<'a> Auditor<'a> {
             findings: assessment.findings,
             reasons,
         })
+    }
+
+    /// Whether a supplied attribution follows another output far better than `target`
+    /// (or, for a single output, the target negated), read on the occlusion of every
+    /// output at once: one model call of one row per group.
+    fn target_check(
+        &self,
+        input: ArrayView1<'_, f64>,
+        target: usize,
+        supplied: &[f64],
+    ) -> Result<Option<findings::TargetMismatch>> {
+        let m = self.groups.len();
+        if m < 3 || supplied.iter().all(|v| *v == supplied[0]) {
+            return Ok(None);
+        }
+        let (rows, _) = self.occlusion(input, target, 0.0)?;
+        let all = ndarray::concatenate![Axis(0), input.insert_axis(Axis(0)), rows.view()];
+        let answers = self.model.predict(all.view())?;
+        let outputs = answers.ncols();
+        let rho = |o: usize| {
+            let occluded: Vec<f64> = (0..m)
+                .map(|g| answers[[0, o]] - answers[[1 + g, o]])
+                .collect();
+            agreement::spearman(supplied, &occluded)
+        };
+        let own = rho(target);
+        let mismatch = if outputs == 1 {
+            (own <= -0.8).then_some(findings::TargetMismatch {
+                likely: None,
+                likely_spearman: -own,
+                own_spearman: own,
+            })
+        } else {
+            (0..outputs)
+                .filter(|&o| o != target)
+                .map(|o| (o, rho(o)))
+                .filter(|&(_, r)| r.is_finite())
+                .max_by(|a, b| a.1.total_cmp(&b.1))
+                .filter(|&(_, r)| r >= 0.8 && r - own >= 0.5)
+                .map(|(o, r)| findings::TargetMismatch {
+                    likely: Some(o),
+                    likely_spearman: r,
+                    own_spearman: own,
+                })
+        };
+        Ok(mismatch)
     }
 
     /// Occlusion: each group alone set to the fill. Returns the occluded inputs and

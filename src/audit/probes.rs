@@ -18,6 +18,13 @@
 //! effect_g = -s_g,  se_g = √(Σ (Δf - s_g t)² / (n - 1) / Σ t²)
 //! ```
 //!
+//! Where the straight move of g alone from the input toward the reference point stays on
+//! the data for its first steps (`PATH_POINTS` equal steps, each scored like a probe), the
+//! effect is read on the move itself instead, as the secant to the farthest step reached
+//! without leaving the data, `effect_g = -(f(x + t* δ) - f(x)) / t*`: for a smooth model
+//! that follows the curve further than the local slope, and for a piecewise-constant one it
+//! sees the splits the move crosses. The local slope's standard error stays as its noise.
+//!
 //! `effect_g` is what removing g toward the reference point would show if the model kept
 //! its on-data behaviour (a linear extrapolation of it): for a linear model it equals the
 //! occlusion attribution `w_g (x_g - c_g)` exactly. A model that answers off the data from
@@ -45,6 +52,8 @@ pub const PROBE_P: f64 = 0.05;
 pub const PROBE_NEIGHBOURS: usize = 7;
 /// Probes per group and context.
 pub const PROBE_DRAWS: usize = 4;
+/// Points on each group's straight move from the input toward the reference point.
+pub const PATH_POINTS: usize = 8;
 
 /// The on-data evidence of one row (record field `on_data`), one entry per group.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -62,6 +71,11 @@ pub struct OnDataEvidence {
     pub probes_on_data: Vec<usize>,
     /// Probes drawn per group.
     pub probes_per_group: usize,
+    /// Whether the model answered like a piecewise-constant one (a tree ensemble): along
+    /// the groups' moves that change its answer at all, most steps change nothing. Its
+    /// local moves then cannot tell how much a far move changes it, so only the credit to
+    /// unused groups and sign flips are scored.
+    pub piecewise_constant: bool,
 }
 
 /// Probes every group of `input` with `family` (the replacement sampler) and measures the
@@ -109,6 +123,19 @@ pub fn probe(
             )?;
         }
     }
+    // Each group moved alone from the input toward the reference point, in equal steps.
+    let mut moves = Array2::<f64>::zeros((m * PATH_POINTS, d));
+    for g in 0..m {
+        for j in 0..PATH_POINTS {
+            let t = (j + 1) as f64 / PATH_POINTS as f64;
+            let mut row = moves.row_mut(g * PATH_POINTS + j);
+            row.assign(&input);
+            for &i in groups.members(g) {
+                row[i] = input[i] + t * (reference_point[i] - input[i]);
+            }
+        }
+    }
+    let probes = ndarray::concatenate![Axis(0), probes.view(), moves.view()];
     let all = ndarray::concatenate![Axis(0), contexts.view(), probes.view()];
     let answers = model.predict(all.view())?;
     check_target(&answers, target)?;
@@ -124,7 +151,23 @@ pub fn probe(
         effect_standard_errors: Vec::with_capacity(m),
         probes_on_data: Vec::with_capacity(m),
         probes_per_group: per_group,
+        piecewise_constant: false,
     };
+    // Steps of each move (the input first) that leave the answer exactly unchanged, over
+    // the groups whose move changes it somewhere.
+    let (mut flat, mut steps) = (0usize, 0usize);
+    for g in 0..m {
+        let start = c + m * per_group + g * PATH_POINTS;
+        let answers: Vec<f64> = std::iter::once(scores[0])
+            .chain((0..PATH_POINTS).map(|j| scores[start + j]))
+            .collect();
+        let same = answers.windows(2).filter(|w| w[0] == w[1]).count();
+        if same < PATH_POINTS {
+            flat += same;
+            steps += PATH_POINTS;
+        }
+    }
+    evidence.piecewise_constant = steps > 0 && 2 * flat >= steps;
     for g in 0..m {
         let members = groups.members(g);
         let delta: Vec<f64> = members
@@ -163,32 +206,49 @@ pub fn probe(
         }
         let usage = (changes.iter().map(|v| v * v).sum::<f64>() / n as f64).sqrt();
         evidence.usage.push(Some(usage));
-        let tt: f64 = positions.iter().map(|t| t * t).sum();
-        if delta_norm2 == 0.0 {
+        let local = local_slope(&changes, &positions);
+        // The farthest point of the move still on the data, reached without leaving it.
+        let path_start = m * per_group + g * PATH_POINTS;
+        let reach = (0..PATH_POINTS)
+            .take_while(|&j| p[path_start + j] >= floor)
+            .last();
+        let (effect, error) = match (reach, local) {
             // The input already sits at the reference point in this group: removing it
             // moves nothing.
-            evidence.effect.push(Some(0.0));
-            evidence.effect_standard_errors.push(Some(0.0));
-        } else if tt > 0.0 && n >= 2 {
-            let slope = changes
-                .iter()
-                .zip(&positions)
-                .map(|(f, t)| f * t)
-                .sum::<f64>()
-                / tt;
-            let rss: f64 = changes
-                .iter()
-                .zip(&positions)
-                .map(|(f, t)| (f - slope * t).powi(2))
-                .sum();
-            evidence.effect.push(Some(-slope));
-            evidence
-                .effect_standard_errors
-                .push(Some((rss / (n - 1) as f64 / tt).sqrt()));
-        } else {
-            evidence.effect.push(None);
-            evidence.effect_standard_errors.push(None);
-        }
+            _ if delta_norm2 == 0.0 => (Some(0.0), Some(0.0)),
+            (Some(j), _) => {
+                let t = (j + 1) as f64 / PATH_POINTS as f64;
+                let secant = (scores[c + path_start + j] - scores[0]) / t;
+                (Some(-secant), Some(local.map_or(0.0, |(_, se)| se)))
+            }
+            (None, Some((slope, se))) => (Some(-slope), Some(se)),
+            (None, None) => (None, None),
+        };
+        evidence.effect.push(effect);
+        evidence.effect_standard_errors.push(error);
     }
     Ok(evidence)
+}
+
+/// The least-squares slope through the origin of the answers' changes on the probes'
+/// positions along the move, `s = Σ Δf t / Σ t²`, and its standard error
+/// `√(Σ (Δf - s t)² / (n - 1) / Σ t²)`; none without two probes or any move.
+fn local_slope(changes: &[f64], positions: &[f64]) -> Option<(f64, f64)> {
+    let n = changes.len();
+    let tt: f64 = positions.iter().map(|t| t * t).sum();
+    if n < 2 || tt <= 0.0 {
+        return None;
+    }
+    let slope = changes
+        .iter()
+        .zip(positions)
+        .map(|(f, t)| f * t)
+        .sum::<f64>()
+        / tt;
+    let rss: f64 = changes
+        .iter()
+        .zip(positions)
+        .map(|(f, t)| (f - slope * t).powi(2))
+        .sum();
+    Some((slope, (rss / (n - 1) as f64 / tt).sqrt()))
 }

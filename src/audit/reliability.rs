@@ -27,16 +27,24 @@ U      = Σ_g â_g · clamp((0.25 - q_g) / 0.2, 0, 1)  credit to groups unused o
 T      = the top-k groups of |a| with â_g ≥ 0.05
 F      = Σ_{g∈T, e_g opposite to a_g beyond 2 se} â_g / Σ_{g∈T} â_g   sign flips
 K      = 1 - Σ_{g∈T} |e_g| / Σ_{g∈top-k of |e|} |e_g|                top-k change
-D      = 1 - (1 - U)(1 - F)(1 - clamp((K - 0.25) / 0.5, 0, 1))
+M      = ½ Σ_g |a_g / Σ|a| - e_g / Σ|e||                             shares moved
+S      = |ln(Σ|a| / Σ|e|)|                                           scale changed
+D      = 1 - (1 - min(1, 8 U)) (1 - F) (1 - clamp((K - 0.2) / 0.4, 0, 1))
+             (1 - clamp((M - 0.2) / 0.3, 0, 1)) (1 - clamp(S - 1, 0, 1))
+         (K, M and S count 0 for a piecewise-constant model: along the groups' moves
+         that change its answer, most steps change nothing)
 sev    = max(excess(r_S), clamp(2 (A_S - max(A_R, ½)), 0, 1),
              clamp(1 - m_S / max(m_R, α), 0, 1))   how far the subject's inputs leave the data
 excess(r) = clamp((r - α) / (1 - α), 0, 1)
 
-P_story       = min(1, 2 D) · (½ + ½ sev)
+P_story       = D · (0.8 + 0.2 sev)
 P_evidence    = ½ · Σ_{g without on-data probes} â_g
 P_uncertainty = ½ · clamp((u - 0.25) / 0.75, 0, 1),  u = ‖se‖ / ‖a‖
 P_declared    = ½ · clamp((L - 0.5) / 0.5, 0, 1),  L = Σ|a - t| / Σ|t| against the
                 recomputation t of the declared --method (supplied explanations)
+P_target      = 0.9 when the supplied values follow another output's occlusion
+                (Spearman ≥ 0.8 and 0.5 above the target's), or for a single output
+                run opposite to it (Spearman ≤ -0.8)
 
 reliability = Π (1 - P)     reliable ≥ 0.7 > doubtful ≥ 0.4 > unreliable";
 
@@ -127,8 +135,14 @@ pub struct Story {
     pub on_data_top: Vec<usize>,
     /// Share of the credit on groups without on-data probes.
     pub unknown_credit: f64,
+    /// `M`: half the L1 distance between the signed shares `a / Σ|a|` and `e / Σ|e|`.
+    pub magnitude_shift: f64,
+    /// `S`: the absolute log ratio of the subject's total credit to the on-data effects'.
+    pub scale_shift: f64,
     /// `D`.
     pub disagreement: f64,
+    /// The model answered like a piecewise-constant one: `K`, `M` and `S` are not scored.
+    pub piecewise_constant: bool,
 }
 
 /// Compares the subject's attribution with the on-data effects (module docs, [`FORMULA`]).
@@ -194,16 +208,43 @@ pub fn story(subject: &[f64], errors: &[f64], on_data: &OnDataEvidence, top_k: u
         let caught: f64 = story.subject_top.iter().map(|&g| effects[g].abs()).sum();
         story.top_k_miss = (1.0 - caught / best).clamp(0.0, 1.0);
     }
-    let k_term = ((story.top_k_miss - 0.25) / 0.5).clamp(0.0, 1.0);
-    story.disagreement = (1.0
-        - (1.0 - story.unused_credit.clamp(0.0, 1.0)) * (1.0 - story.sign_flips) * (1.0 - k_term))
-        .clamp(0.0, 1.0);
+    if best > 0.0 {
+        let effect_norm: f64 = effects.iter().map(|v| v.abs()).sum();
+        story.magnitude_shift = 0.5
+            * (0..m)
+                .map(|g| (subject[g] / total - effects[g] / effect_norm).abs())
+                .sum::<f64>();
+    }
+    if best > 0.0 {
+        let effect_norm: f64 = effects.iter().map(|v| v.abs()).sum();
+        story.scale_shift = (total / effect_norm).ln().abs();
+    }
+    story.piecewise_constant = on_data.piecewise_constant;
+    let [u, f, k, m, s] = story.parts();
+    story.disagreement =
+        (1.0 - (1.0 - u) * (1.0 - f) * (1.0 - k) * (1.0 - m) * (1.0 - s)).clamp(0.0, 1.0);
     story
+}
+
+impl Story {
+    /// The five terms of `D`, each in [0, 1]: unused credit, sign flips, top-k change,
+    /// shares moved, scale changed.
+    pub fn parts(&self) -> [f64; 5] {
+        // A piecewise-constant model's local moves say nothing of the size of a far one.
+        let scored = if self.piecewise_constant { 0.0 } else { 1.0 };
+        [
+            (8.0 * self.unused_credit).clamp(0.0, 1.0),
+            self.sign_flips.clamp(0.0, 1.0),
+            scored * ((self.top_k_miss - 0.2) / 0.4).clamp(0.0, 1.0),
+            scored * ((self.magnitude_shift - 0.2) / 0.3).clamp(0.0, 1.0),
+            scored * (self.scale_shift - 1.0).clamp(0.0, 1.0),
+        ]
+    }
 }
 
 /// `P_story`.
 pub fn story_penalty(story: &Story, severity: f64) -> f64 {
-    ((2.0 * story.disagreement).min(1.0) * (0.5 + 0.5 * severity)).clamp(0.0, 1.0)
+    (story.disagreement * (0.8 + 0.2 * severity)).clamp(0.0, 1.0)
 }
 
 /// `P_evidence`.
@@ -286,6 +327,7 @@ mod tests {
             effect_standard_errors: vec![Some(0.0); effect.len()],
             probes_on_data: vec![32; effect.len()],
             probes_per_group: 32,
+            piecewise_constant: false,
         }
     }
 
@@ -319,14 +361,15 @@ mod tests {
         );
         assert!((flipped.sign_flips - 0.6).abs() < 1e-12);
         assert_eq!(flipped.flipped_groups, vec![0]);
-        // Scale does not matter.
-        let scaled = story(
-            &[30.0, -20.0, 10.0, 0.0],
-            &zero,
-            &evidence(&[3.0, -2.0, 1.0, 0.0]),
-            2,
-        );
-        assert_eq!(scaled.disagreement, 0.0);
+        // Ten times the on-data effects: the shares agree, the scale does not
+        // (S = ln 10, past the unit width of its term).
+        let effects = evidence(&[3.0, -2.0, 1.0, 0.0]);
+        let scaled = story(&[30.0, -20.0, 10.0, 0.0], &zero, &effects, 2);
+        assert!((scaled.scale_shift - 10f64.ln()).abs() < 1e-12);
+        assert_eq!(scaled.parts(), [0.0, 0.0, 0.0, 0.0, 1.0]);
+        // Twice: within the tolerance, no disagreement.
+        let doubled = story(&[6.0, -4.0, 2.0, 0.0], &zero, &effects, 2);
+        assert_eq!(doubled.disagreement, 0.0);
     }
 
     #[test]

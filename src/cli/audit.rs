@@ -304,11 +304,16 @@ impl SuppliedRows {
 pub fn settings_line(auditor: &Auditor<'_>) -> String {
     let s = auditor.settings();
     format!(
-        "deletion: {}; replacement: {} sampler, {} draws; {} masks; path: baseline {}, {} {} points; seed {}",
+        "deletion: {}; replacement: {} sampler, {} draws; {} masks{}; path: baseline {}, {} {} points; seed {}",
         auditor.deletion_fill(),
         s.sampler,
         s.draws,
-        s.samples,
+        auditor.masks_per_row(),
+        if auditor.masks_per_row() < s.samples {
+            " (every coalition)"
+        } else {
+            ""
+        },
         s.baseline,
         s.steps,
         s.rule,

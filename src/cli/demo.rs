@@ -50,8 +50,9 @@ fn segment_ids() -> Vec<String> {
     ids
 }
 
-/// Whether a demo segment was built to mislead a mean-filling explanation.
-pub fn built_to_mislead(id: &str) -> bool {
+/// Whether a demo segment comes from an unusually high or low pressure zone, where
+/// mean-filling one pressure fakes a pressure drop no real segment has.
+pub fn in_unusual_zone(id: &str) -> bool {
     id.contains("zone")
 }
 
@@ -262,8 +263,9 @@ fn print_summary(
          average), replacement (masked readings drawn from the data given the others) and \
          integrated gradients; the verdict judges deletion. Segments from unusually high or \
          low pressure zones were built so that filling one pressure with the average fakes a \
-         pressure drop no real segment has: the masked inputs leave the data, but the network \
-         answers them as its behaviour on real segments predicts, so the story holds."
+         pressure drop no real segment has: the masked inputs leave the data, but the network is \
+         the same function there, and for most of them the story its explanation tells is the \
+         one it tells on real segments."
     );
     println!();
     table(ids, audits);
@@ -284,15 +286,17 @@ fn print_summary(
         records
             .iter()
             .zip(ids)
-            .filter(|(r, id)| built_to_mislead(id) == mislead && r.verdict == v)
+            .filter(|(r, id)| in_unusual_zone(id) == mislead && r.verdict == v)
             .count()
     };
     println!(
-        "typical segments: {} reliable of {TYPICAL}; zone segments, network: {} reliable of {}; \
-         zone segments, vendor's copy: {} unreliable of {}",
+        "typical segments: {} reliable of {TYPICAL}; zone segments: network {} reliable, {} \
+         unreliable of {}; vendor's copy {} reliable, {} unreliable of {}",
         count(audits, false, Verdict::Reliable),
         count(audits, true, Verdict::Reliable),
+        count(audits, true, Verdict::Unreliable),
         2 * PER_ZONE,
+        count(vendor_audits, true, Verdict::Reliable),
         count(vendor_audits, true, Verdict::Unreliable),
         2 * PER_ZONE
     );

@@ -903,3 +903,65 @@ fn bad_inputs_to_audit_are_refused_with_their_place_named() {
         assert_eq!(listing(d), before, "{flags:?} left a file behind");
     }
 }
+
+#[test]
+fn supplied_occlusion_for_another_output_is_named_and_the_right_one_matches_its_twin() {
+    // A logistic model's two outputs are 1 - p and p, so class 1's occlusion is exactly
+    // class 0's negated: supplied class-1 values audited as class 0 must name --target 1.
+    // The occlusion itself, f(x) - f(x with feature g at the reference mean), is computed
+    // here from the model's own answers (the definition of occlusion), and kilter's
+    // recomputation of the declared method must equal it.
+    let dir = temp_dir();
+    let (names, values) = breast_cancer_columns(6, true);
+    let queries = values.slice(ndarray::s![..8, ..]).to_owned();
+    prepare(dir.path(), &names, &values, &queries);
+    let json = one_layer_model("logistic", &[1.2, -0.8, 0.5, 0.0, 0.9, -0.3], 0.2);
+    write_model(&dir.path().join("logistic.json"), &json);
+    let model = network(json);
+    let mean = values.mean_axis(Axis(0)).unwrap();
+    let original = model.predict(queries.view()).unwrap();
+    let mut occlusion = Array2::<f64>::zeros(queries.dim());
+    for g in 0..6 {
+        let mut filled = queries.clone();
+        filled.column_mut(g).fill(mean[g]);
+        let answers = model.predict(filled.view()).unwrap();
+        for r in 0..queries.nrows() {
+            occlusion[[r, g]] = original[[r, 1]] - answers[[r, 1]];
+        }
+    }
+    write_csv(&dir.path().join("occlusion1.csv"), &names, &occlusion);
+    for target in ["0", "1"] {
+        let out = format!("t{target}.jsonl");
+        audit(
+            dir.path(),
+            &["--model", "logistic.json"],
+            &[
+                "--explanations",
+                "occlusion1.csv",
+                "--method",
+                "occlusion:mean",
+                "--target",
+                target,
+                "--out",
+                &out,
+                "--quiet",
+            ],
+        )
+        .expect_status(0);
+        for r in read_audit(&dir.path().join(&out)) {
+            assert_eq!(r.subject, "supplied");
+            assert_eq!(r.method.as_deref(), Some("occlusion:mean"));
+            let wrong = r.findings.iter().find(|f| f.code == "wrong-target");
+            if target == "0" {
+                let finding = wrong.expect("wrong target named");
+                assert!(finding.reason.contains("--target 1"), "{}", finding.reason);
+                assert_eq!(r.findings[0].code, "wrong-target");
+                assert_eq!(r.verdict, Verdict::Unreliable, "row {}", r.row);
+            } else {
+                assert!(wrong.is_none(), "row {}: {:?}", r.row, r.reasons);
+                let distance = r.evidence.declared_distance.unwrap();
+                assert!(distance < 1e-9, "row {}: {distance}", r.row);
+            }
+        }
+    }
+}

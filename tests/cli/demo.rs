@@ -47,8 +47,19 @@ fn the_demo_finds_what_it_was_built_to_show() {
         }
     }
     assert_eq!((misleading.len(), typical.len()), (8, 8));
-    // The network is the same function on and off the data: its zone segments' masked
-    // inputs leave the data, but the story holds there (by construction of the scenario).
+    // The network is the same function on and off the data (by construction of the
+    // scenario): its zone segments' masked inputs leave the data, and none of their
+    // explanations is condemned; the vendor's copy answers off the data from water
+    // temperature (Slack et al., AIES 2020), and most of its zone segments are.
+    let vendor: Vec<AuditRecord> = read_records(&out.join("pipe-audit-vendor.jsonl"));
+    assert_eq!(vendor.len(), ids.len());
+    let count = |records: &[AuditRecord], zone: bool, v: Verdict| {
+        records
+            .iter()
+            .zip(&ids)
+            .filter(|(r, id)| id.contains("zone") == zone && r.verdict == v)
+            .count()
+    };
     for (id, r) in &misleading {
         assert!(r.families.deletion.off_manifold_rate > 0.3, "{id}");
         assert_eq!(r.subject, "deletion", "{id}");
@@ -61,48 +72,43 @@ fn the_demo_finds_what_it_was_built_to_show() {
         );
     }
     for (id, r) in &typical {
-        assert_ne!(
+        assert_eq!(
             r.verdict,
-            Verdict::Unreliable,
+            Verdict::Reliable,
             "{id}: {:.2} {:?}",
             r.reliability,
             r.reasons
         );
         assert!(r.families.deletion.off_manifold_rate < 0.05, "{id}");
     }
-    let count = |rows: &[(&String, &AuditRecord)], v: Verdict| {
-        rows.iter().filter(|(_, r)| r.verdict == v).count()
-    };
     assert!(
-        count(&misleading, Verdict::Reliable) >= 6,
-        "most zone segments' stories hold"
+        count(&audits, true, Verdict::Reliable) >= 4,
+        "zone stories that hold"
     );
     assert!(
-        count(&typical, Verdict::Reliable) >= 6,
-        "most typical segments reliable"
+        count(&vendor, true, Verdict::Unreliable) >= 5,
+        "the vendor copy's zone segments"
     );
-    // The vendor's copy answers off the data from water temperature (Slack et al., AIES
-    // 2020): on zone segments, where mean-filling a pressure triggers its fallback, most
-    // explanations are flagged, each by a story finding.
-    let vendor: Vec<AuditRecord> = read_records(&out.join("pipe-audit-vendor.jsonl"));
-    let flagged: Vec<&AuditRecord> = vendor
-        .iter()
-        .zip(&ids)
-        .filter(|(r, id)| id.contains("zone") && r.verdict != Verdict::Reliable)
-        .map(|(r, _)| r)
-        .collect();
-    assert!(
-        flagged.len() >= 4,
-        "{} zone segments flagged",
-        flagged.len()
+    assert_eq!(
+        count(&vendor, true, Verdict::Reliable),
+        0,
+        "every vendor zone segment flagged"
     );
-    for r in flagged {
-        let code = r.findings[0].code.as_str();
-        assert!(
-            ["unused-credit", "sign-flip", "top-groups-differ"].contains(&code),
-            "row {}: {code}",
-            r.row
-        );
+    for (r, id) in vendor.iter().zip(&ids) {
+        if id.contains("zone") {
+            let code = r.findings[0].code.as_str();
+            assert!(
+                [
+                    "unused-credit",
+                    "sign-flip",
+                    "top-groups-differ",
+                    "credit-shares-differ",
+                    "scale-differs"
+                ]
+                .contains(&code),
+                "{id}: {code}"
+            );
+        }
     }
 
     let baselines: Vec<BaselineRecord> = read_records(&out.join("pipe-baselines.jsonl"));
