@@ -125,13 +125,13 @@ impl Report {
             let _ = write!(
                 b,
                 "<article class=\"row\" id=\"{}-row-{}\"><h3>{} {} <span class=\"score\">\
-                 reliability {:.2}</span></h3><p>target output {}, prediction {:.4}; the input \
+                 reliability {}</span></h3><p>target output {}, prediction {:.4}; the input \
                  itself has p = {:.3}</p>",
                 anchor(&s.title),
                 r.row,
                 label(r.row),
                 verdict_badge(r.verdict),
-                r.reliability,
+                crate::audit::reliability::score_text(r.reliability),
                 r.target,
                 r.prediction,
                 r.input_p
@@ -250,10 +250,11 @@ fn score_bar(score: f64) -> String {
         Verdict::Doubtful => DELETION,
         Verdict::Unreliable => "#D55E00",
     };
+    let text = crate::audit::reliability::score_text(score);
     format!(
-        "<svg class=\"bar\" width=\"104\" height=\"14\" role=\"img\" aria-label=\"{score:.2}\">\
+        "<svg class=\"bar\" width=\"104\" height=\"14\" role=\"img\" aria-label=\"{text}\">\
          <rect x=\"0\" y=\"2\" width=\"100\" height=\"10\" fill=\"#eeeeee\"/>\
-         <rect x=\"0\" y=\"2\" width=\"{:.1}\" height=\"10\" fill=\"{colour}\"/></svg> {score:.2}",
+         <rect x=\"0\" y=\"2\" width=\"{:.1}\" height=\"10\" fill=\"{colour}\"/></svg> {text}",
         100.0 * score.clamp(0.0, 1.0)
     )
 }

@@ -299,6 +299,15 @@ pub fn reliability(penalties: impl IntoIterator<Item = f64>) -> f64 {
         .clamp(0.0, 1.0)
 }
 
+/// A score as printed: two decimals, rounded down, so that a printed score never reaches
+/// a verdict threshold the score itself is below (0.6999 prints 0.69, not 0.70).
+pub fn score_text(score: f64) -> String {
+    format!(
+        "{:.2}",
+        ((score * 100.0 + 1e-9).floor() / 100.0).clamp(0.0, 1.0)
+    )
+}
+
 /// Sets to exactly zero the attributions within round-off of zero, so that exact zeros
 /// stay ties: `|a_g| ≤ ZERO_SNAP · scale`, with `scale` the largest model score or
 /// attribution magnitude involved.
@@ -370,6 +379,15 @@ mod tests {
         // Twice: within the tolerance, no disagreement.
         let doubled = story(&[6.0, -4.0, 2.0, 0.0], &zero, &effects, 2);
         assert_eq!(doubled.disagreement, 0.0);
+    }
+
+    #[test]
+    fn printed_scores_never_cross_a_threshold() {
+        assert_eq!(score_text(0.69995), "0.69");
+        assert_eq!(score_text(0.7), "0.70");
+        assert_eq!(score_text(0.57), "0.57");
+        assert_eq!(score_text(1.0), "1.00");
+        assert_eq!(score_text(0.0), "0.00");
     }
 
     #[test]

@@ -369,7 +369,8 @@ impl Summary {
         if !shown.is_empty() {
             let _ = writeln!(stderr, "  lowest reliability:");
             for (score, row, reason) in shown {
-                let _ = writeln!(stderr, "    row {row}: {score:.2}  {reason}");
+                let score = kilter::audit::reliability::score_text(*score);
+                let _ = writeln!(stderr, "    row {row}: {score}  {reason}");
             }
         }
         let _ = writeln!(stderr, "  {}", kilter::report::CAUTION);

@@ -323,10 +323,10 @@ fn table(ids: &[String], records: &[AuditRecord]) {
             Some(f) => format!("{}: {}", f.severity.as_str(), f.title),
         };
         println!(
-            "  {:<28} {:>10.3} {:>11.2}  {:<10}  {finding}",
+            "  {:<28} {:>10.3} {:>11}  {:<10}  {finding}",
             id,
             r.prediction,
-            r.reliability,
+            kilter::audit::reliability::score_text(r.reliability),
             r.verdict.as_str(),
         );
     }
