@@ -194,7 +194,15 @@ fn finding(code: &str, title: &str, penalty: f64, groups: Vec<String>, reason: S
 fn departure_sentence(noun: &str, d: &Departure, r: &Departure, ctx: &Context<'_>) -> String {
     let alpha = ctx.alpha;
     let [share, detect, typical] = score::severity_terms(d, r, alpha);
-    let mut text = if detect > share && detect > typical {
+    let mut text = if share.max(detect).max(typical) < 0.2 {
+        format!(
+            "its {noun} stay close to the data ({} outside it at p < {alpha}; median p {:.3}, \
+             inputs drawn from the data: {:.3})",
+            percent(d.off_manifold_rate),
+            d.median_p,
+            r.median_p
+        )
+    } else if detect > share && detect > typical {
         format!(
             "a classifier tells its {noun} from reference rows with AUC {:.2} (inputs drawn \
              from the data: {:.2})",
@@ -260,9 +268,11 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
     if story_penalty >= REASON_FROM {
         let f = match largest {
             0 => {
+                let total: f64 = s.attribution.iter().map(|v| v.abs()).sum();
                 let shown: Vec<String> = story
                     .unused_groups
                     .iter()
+                    .filter(|&&g| s.attribution[g].abs() >= 0.005 * total)
                     .take(3)
                     .map(|&g| {
                         format!(
@@ -283,7 +293,11 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
                          data-like inputs: {}; {departure}",
                         s.phrase,
                         percent(story.unused_credit),
-                        shown.join(", ")
+                        if shown.is_empty() {
+                            "several, each under 0.5% of the credit".to_string()
+                        } else {
+                            shown.join(", ")
+                        }
                     ),
                 )
             }

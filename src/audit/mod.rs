@@ -591,7 +591,10 @@ impl<'a> Auditor<'a> {
                         self.deletion.values().clone(),
                         departure(rate, median, None),
                         Some(values.as_slice()),
-                        format!("occluded ({})", self.deletion.inputs_phrase()),
+                        format!(
+                            "occluded inputs (one group at a time set to the {} fill)",
+                            self.deletion.describe()
+                        ),
                         format!("{} fill", self.deletion.describe()),
                     )
                 }
