@@ -105,8 +105,7 @@ impl Report {
              </thead><tbody>",
         );
         for r in s.records {
-            let _ =
-                write!(
+            let _ = write!(
                 b,
                 "<tr><td><a href=\"#{}-row-{}\">{}</a></td><td>{}</td><td>{:.3}</td><td>{}</td>\
                  <td>{}</td><td class=\"reason\">{}</td></tr>",
@@ -117,7 +116,10 @@ impl Report {
                 r.prediction,
                 score_bar(r.reliability),
                 verdict_badge(r.verdict),
-                escape(r.reasons.first().map_or("no finding lowered the score", |x| x))
+                escape(&r.findings.first().map_or_else(
+                    || "nothing to report".to_string(),
+                    |f| format!("{}: {}", f.severity.as_str(), f.title)
+                ))
             );
         }
         b.push_str("</tbody></table>");
@@ -148,13 +150,28 @@ impl Report {
                     b.push_str("</div>");
                 }
             }
-            b.push_str("<div class=\"panels\"><div class=\"panel\"><h4>Findings</h4>");
-            if r.reasons.is_empty() {
-                b.push_str("<p>No finding lowered the score.</p>");
+            let _ = write!(
+                b,
+                "<div class=\"panels\"><div class=\"panel\"><h4>Findings</h4><p>Judged: {}.</p>",
+                escape(&match (r.subject.as_str(), &r.method) {
+                    ("supplied", Some(m)) => format!("the supplied explanation, declared {m}"),
+                    ("supplied", None) => "the supplied explanation".to_string(),
+                    _ => format!("kilter's deletion to {}", r.families.deletion.fill),
+                })
+            );
+            if r.findings.is_empty() {
+                b.push_str("<p>Nothing to report.</p>");
             } else {
                 b.push_str("<ul class=\"reasons\">");
-                for reason in &r.reasons {
-                    let _ = write!(b, "<li>{}</li>", escape(reason));
+                for f in &r.findings {
+                    let _ = write!(
+                        b,
+                        "<li><b>{}: {}</b> <code>{}</code> {}</li>",
+                        f.severity.as_str(),
+                        escape(&f.title),
+                        escape(&f.code),
+                        escape(&f.reason)
+                    );
                 }
                 b.push_str("</ul>");
             }
