@@ -253,6 +253,14 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
     let mut findings = Vec::new();
     let departure = departure_sentence(&s.inputs_phrase, &s.departure, &r, ctx);
     let effect = |g: usize| ctx.on_data.effect[g].unwrap_or(0.0);
+    let claimed_against_data = |g: usize| {
+        format!(
+            "{} ({:+.3} claimed, {:+.3} on data)",
+            all[g],
+            s.attribution[g],
+            effect(g)
+        )
+    };
     // The story finding is named after its largest part.
     let parts = story.parts();
     let largest = (0..parts.len())
@@ -274,14 +282,7 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
                     .iter()
                     .filter(|&&g| s.attribution[g].abs() >= 0.005 * total)
                     .take(3)
-                    .map(|&g| {
-                        format!(
-                            "{} ({:+.3} claimed, {:+.3} on data)",
-                            all[g],
-                            s.attribution[g],
-                            effect(g)
-                        )
-                    })
+                    .map(|&g| claimed_against_data(g))
                     .collect();
                 finding(
                     "unused-credit",
@@ -305,14 +306,7 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
                 let shown: Vec<String> = story
                     .flipped_groups
                     .iter()
-                    .map(|&g| {
-                        format!(
-                            "{} ({:+.3} claimed, {:+.3} on data)",
-                            all[g],
-                            s.attribution[g],
-                            effect(g)
-                        )
-                    })
+                    .map(|&g| claimed_against_data(g))
                     .collect();
                 finding(
                     "sign-flip",
