@@ -664,6 +664,14 @@ impl<'a> Auditor<'a> {
             },
         };
         let subject_name = subject.name.to_string();
+        let declared_record =
+            subject
+                .declared
+                .as_ref()
+                .map(|(twin, method)| DeclaredRecomputation {
+                    method: method.clone(),
+                    attribution: twin.to_vec(),
+                });
         let assessment = findings::assess(&findings::Context {
             subject,
             families: &families,
@@ -687,6 +695,7 @@ impl<'a> Auditor<'a> {
             supplied: supplied_agreement,
             subject: subject_name,
             method: method_name,
+            declared: declared_record,
             on_data,
             evidence: assessment.evidence,
             reliability: assessment.reliability,

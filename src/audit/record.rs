@@ -134,6 +134,10 @@ pub struct AuditRecord {
     /// The declared `--method` of a supplied explanation.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub method: Option<String>,
+    /// kilter's recomputation of the declared method on the same settings, with
+    /// `--method` only: what the supplied explanation should equal if made as declared.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub declared: Option<DeclaredRecomputation>,
     /// The on-data probes the subject's story is checked against.
     pub on_data: OnDataEvidence,
     /// The numbers the reliability is computed from.
@@ -144,6 +148,16 @@ pub struct AuditRecord {
     pub findings: Vec<Finding>,
     /// The sentences of the findings that lowered the score, largest first.
     pub reasons: Vec<String>,
+}
+
+/// kilter's own run of the method a supplied explanation declares (`--method`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DeclaredRecomputation {
+    /// The declared method, as given (`occlusion:mean`).
+    pub method: String,
+    /// One number per group, in the order of `attribution` elsewhere.
+    pub attribution: Vec<f64>,
 }
 
 /// One ranked baseline candidate (SPEC: `kilter baseline`, `candidates`).

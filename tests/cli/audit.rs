@@ -961,6 +961,20 @@ fn supplied_occlusion_for_another_output_is_named_and_the_right_one_matches_its_
                 assert!(wrong.is_none(), "row {}: {:?}", r.row, r.reasons);
                 let distance = r.evidence.declared_distance.unwrap();
                 assert!(distance < 1e-9, "row {}: {distance}", r.row);
+                let twin = r.declared.as_ref().expect("the recomputation is recorded");
+                assert_eq!(twin.method, "occlusion:mean");
+                for (g, (k, own)) in twin
+                    .attribution
+                    .iter()
+                    .zip(occlusion.row(r.row))
+                    .enumerate()
+                {
+                    assert!(
+                        (k - own).abs() < 1e-9,
+                        "row {} group {g}: {k} vs {own}",
+                        r.row
+                    );
+                }
             }
         }
     }
