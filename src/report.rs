@@ -279,11 +279,13 @@ fn score_bar(score: f64) -> String {
 /// Three bars per group, around a zero axis.
 fn attribution_chart(r: &AuditRecord, names: &[String]) -> String {
     let f = &r.families;
-    let series = [
+    let mut series = vec![
         ("deletion", DELETION, &f.deletion.attribution),
         ("replacement", REPLACEMENT, &f.replacement.attribution),
-        ("interpolation", INTERPOLATION, &f.interpolation.attribution),
     ];
+    if f.interpolation.applicable {
+        series.push(("interpolation", INTERPOLATION, &f.interpolation.attribution));
+    }
     let m = names.len();
     let mut order: Vec<usize> = (0..m).collect();
     let size = |g: usize| series.iter().map(|s| s.2[g].abs()).fold(0.0, f64::max);
@@ -338,6 +340,13 @@ fn attribution_chart(r: &AuditRecord, names: &[String]) -> String {
         }
     }
     svg.push_str("</svg>");
+    if let Some(why) = &f.interpolation.not_applicable {
+        let _ = write!(
+            svg,
+            "<p class=\"small\">Integrated gradients are not drawn: {}.</p>",
+            escape(why)
+        );
+    }
     if m > order.len() {
         let _ = write!(
             svg,

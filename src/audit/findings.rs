@@ -479,7 +479,10 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
         median_p: i.median_p,
         detectability_auc: i.detectability_auc,
     };
-    if s.name == "deletion" && score::severity(&path, &r, ctx.alpha) >= 0.5 {
+    if s.name == "deletion"
+        && !ctx.on_data.piecewise_constant
+        && score::severity(&path, &r, ctx.alpha) >= 0.5
+    {
         findings.push(finding(
             "path-off-data",
             "the path family leaves the data",

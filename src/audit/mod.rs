@@ -524,6 +524,8 @@ impl<'a> Auditor<'a> {
                 Stream::DetectInterpolation,
                 best.embedded_path.view(),
             ),
+            applicable: true,
+            not_applicable: None,
         };
 
         let k = self.settings.top_k.min(m.saturating_sub(1).max(1));
@@ -685,6 +687,16 @@ impl<'a> Auditor<'a> {
             target_mismatch,
         });
         let reasons = assessment.reasons();
+        let mut families = families;
+        if on_data.piecewise_constant {
+            families.interpolation.applicable = false;
+            families.interpolation.not_applicable = Some(
+                "the model is piecewise-constant (most steps of the on-data moves change \
+                 nothing): its gradients vanish almost everywhere, so integrated gradients \
+                 and their completeness gap say nothing of it"
+                    .to_string(),
+            );
+        }
         Ok(AuditRecord {
             row,
             target,

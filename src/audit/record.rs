@@ -81,6 +81,18 @@ pub struct PathFamily {
     pub p_histogram: Vec<usize>,
     /// Every baseline candidate considered, best first (one with a fixed `--baseline`).
     pub candidates: Vec<BaselineCandidate>,
+    /// False where integrated gradients do not apply to the model: a piecewise-constant
+    /// model (a tree ensemble) has zero gradient almost everywhere, so the path's numbers
+    /// are kept for completeness but say nothing of the model.
+    #[serde(default = "applies")]
+    pub applicable: bool,
+    /// Why the family does not apply, when it does not.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub not_applicable: Option<String>,
+}
+
+fn applies() -> bool {
+    true
 }
 
 /// The three families.

@@ -979,3 +979,87 @@ fn supplied_occlusion_for_another_output_is_named_and_the_right_one_matches_its_
         }
     }
 }
+
+#[test]
+fn a_tree_ensembles_verdicts_do_not_hinge_on_the_path_family() {
+    // A gradient-boosted tree ensemble (tests/golden/models/wine_gb.onnx, scikit-learn
+    // GradientBoostingClassifier on the wine corpus) is piecewise-constant by construction:
+    // its gradient is zero almost everywhere, so integrated gradients cannot describe it
+    // (common practice). The verdict must not move when only the path family changes, and
+    // the record must say the family does not apply.
+    let dir = temp_dir();
+    let d = dir.path();
+    crate::harness::fit_wine(d, &["--holdout", "0"]);
+    let wine = std::fs::read_to_string(repo("reference-corpora/wine.csv")).unwrap();
+    let lines: Vec<&str> = wine.lines().collect();
+    let picked: Vec<&str> = [1, 40, 70, 100, 130, 160]
+        .iter()
+        .map(|&i| lines[i])
+        .collect();
+    std::fs::write(
+        d.join("q.csv"),
+        format!("{}\n{}\n", lines[0], picked.join("\n")),
+    )
+    .unwrap();
+    let model = repo("tests/golden/models/wine_gb.onnx");
+    let run = |baseline: &str, steps: &str, out: &str| {
+        kilter(
+            d,
+            &[
+                "--quiet",
+                "audit",
+                "--profile",
+                "w.kprofile",
+                "--model",
+                str(&model),
+                "--input",
+                "q.csv",
+                "--label-column",
+                "cultivar",
+                "--samples",
+                "128",
+                "--baseline",
+                baseline,
+                "--steps",
+                steps,
+                "--seed",
+                "3",
+                "--out",
+                out,
+            ],
+        )
+        .expect_status(0);
+        read_audit(&d.join(out))
+    };
+    let zero = run("zero", "64", "zero.jsonl");
+    let mean = run("mean", "16", "mean.jsonl");
+    for (a, b) in zero.iter().zip(&mean) {
+        assert!(a.on_data.piecewise_constant, "row {}", a.row);
+        assert!(!a.families.interpolation.applicable, "row {}", a.row);
+        let why = a.families.interpolation.not_applicable.as_deref().unwrap();
+        assert!(why.contains("piecewise-constant"), "{why}");
+        assert_ne!(
+            a.families.interpolation.attribution, b.families.interpolation.attribution,
+            "row {}: the two runs must differ in the path family",
+            a.row
+        );
+        assert_eq!(a.reliability, b.reliability, "row {}", a.row);
+        assert_eq!(a.verdict, b.verdict, "row {}", a.row);
+        let codes = |r: &AuditRecord| {
+            r.findings
+                .iter()
+                .map(|f| f.code.clone())
+                .collect::<Vec<_>>()
+        };
+        assert_eq!(codes(a), codes(b), "row {}", a.row);
+        for f in &a.findings {
+            assert_ne!(f.code, "path-off-data", "row {}", a.row);
+            assert!(
+                !f.reason.contains("completeness"),
+                "row {}: {}",
+                a.row,
+                f.reason
+            );
+        }
+    }
+}
