@@ -39,14 +39,25 @@ pub enum CellFault {
     NotNumeric(String),
     /// The cell is NaN or infinite.
     NotFinite(String),
+    /// The cell holds a missing-value marker (`NA`, `n/a`, `NaN`, `null`, `?`).
+    Missing(String),
 }
 
 impl fmt::Display for CellFault {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
-            CellFault::Empty => write!(f, "the cell is empty"),
+            CellFault::Empty => write!(
+                f,
+                "the cell is empty (a missing value: fit leaves reference rows with missing \
+                 cells out, but rows to score, predict or audit must be complete)"
+            ),
             CellFault::NotNumeric(text) => write!(f, "\"{text}\" is not a number"),
             CellFault::NotFinite(text) => write!(f, "{text} is not a finite number"),
+            CellFault::Missing(text) => write!(
+                f,
+                "\"{text}\" marks a missing value (fit leaves reference rows with missing \
+                 cells out, but rows to score, predict or audit must be complete)"
+            ),
         }
     }
 }

@@ -30,6 +30,31 @@ impl Groups {
         }
     }
 
+    /// One group per feature, except that each block of columns in `blocks` (the one-hot
+    /// encoding of one categorical variable) is one group, named after the block.
+    pub fn singletons_and_blocks(feature_names: &[String], blocks: &[Vec<usize>]) -> Groups {
+        let mut members = Vec::new();
+        let mut names = Vec::new();
+        for (i, name) in feature_names.iter().enumerate() {
+            match blocks.iter().find(|b| b.contains(&i)) {
+                Some(block) if block[0] == i => {
+                    members.push(block.clone());
+                    names.push(block_name(block, feature_names));
+                }
+                Some(_) => {}
+                None => {
+                    members.push(vec![i]);
+                    names.push(name.clone());
+                }
+            }
+        }
+        Groups {
+            members,
+            names,
+            features: feature_names.len(),
+        }
+    }
+
     /// Reads `--groups FILE`: `[[0, 1], [2], ...]` or `[["a", "b"], ["c"], ...]`.
     pub fn from_json_file(path: &Path, feature_names: &[String]) -> Result<Groups> {
         let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
@@ -210,6 +235,31 @@ impl Groups {
             .iter()
             .map(|m| m.iter().map(|&i| per_feature[i]).sum())
             .collect()
+    }
+}
+
+/// A one-hot block's name: the prefix its columns share, without a trailing separator
+/// (`health_a`, `health_b` give `health`), else the column names joined with `+`.
+fn block_name(block: &[usize], feature_names: &[String]) -> String {
+    let first: Vec<char> = feature_names[block[0]].chars().collect();
+    let shared = block[1..].iter().fold(first.len(), |len, &c| {
+        feature_names[c]
+            .chars()
+            .zip(&first)
+            .take(len)
+            .take_while(|(a, b)| a == *b)
+            .count()
+    });
+    let prefix: String = first[..shared].iter().collect();
+    let prefix = prefix.trim_end_matches(['_', '.', '-', ' ', ':']);
+    if prefix.chars().count() >= 2 {
+        prefix.to_string()
+    } else {
+        block
+            .iter()
+            .map(|&c| feature_names[c].as_str())
+            .collect::<Vec<_>>()
+            .join("+")
     }
 }
 

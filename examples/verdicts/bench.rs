@@ -1634,7 +1634,7 @@ pub fn run_configuration(
     let d = shape.d();
     let settings = AuditSettings {
         fill: fill.kilter(),
-        sampler: Sampler::Gaussian,
+        sampler: Sampler::Auto,
         baseline: BaselineChoice::Fixed(fill.baseline()),
         method: explanation.kilter_method(),
         target: Some(target),

@@ -126,6 +126,9 @@ pub struct Context<'a> {
     pub p_floor: f64,
     /// A supplied explanation that follows another output far better than the target.
     pub target_mismatch: Option<TargetMismatch>,
+    /// The subject's fill where it sets columns to values their kind never takes
+    /// ("idp to 0.31 (binary)"), when the subject uses a fill.
+    pub invalid_fill: Option<String>,
 }
 
 /// A supplied attribution that follows another output (`likely`) far better than the
@@ -507,6 +510,20 @@ pub fn assess(ctx: &Context<'_>) -> Assessment {
              sign flips are scored, and integrated gradients, whose gradients vanish almost \
              everywhere, do not apply"
                 .to_string(),
+        ));
+    }
+    if let Some(columns) = &ctx.invalid_fill {
+        findings.push(finding(
+            "fill-not-a-value",
+            "the fill is not a value of some columns",
+            0.0,
+            Vec::new(),
+            format!(
+                "the {} sets {columns}: values these columns never take, so masked inputs \
+                 are unlike the data by construction (--fill typical fills each column with \
+                 a valid value)",
+                s.reference_phrase
+            ),
         ));
     }
     if ctx.families.replacement.off_manifold_rate > 0.5 {

@@ -41,7 +41,7 @@ use crate::perturbation::masking::{evaluate_design, kept_features, MaskedGame};
 use crate::perturbation::{
     ConditionalGaussian, Deletion, MarginalRows, NearestRows, PerturbationFamily,
 };
-use crate::profile::Profile;
+use crate::profile::{FeatureKind, FeatureKinds, Profile};
 use crate::stats::detectability_auc;
 use ndarray::Array1;
 
@@ -84,6 +84,13 @@ pub struct Auditor<'a> {
     replacement_point: Array1<f64>,
     baselines: BaselineMaker,
     differences: FiniteDifference,
+    /// Why `--sampler auto` chose `neighbours`.
+    sampler_choice: Option<String>,
+    /// Masked features the deletion fill sets to a value their kind never takes.
+    invalid_fill: Vec<usize>,
+    /// The feature kinds perturbed inputs are held to; none for images or when every
+    /// feature is continuous.
+    kinds: Option<FeatureKinds>,
 }
 
 /// Purposes of the per-row random streams.
@@ -158,14 +165,45 @@ impl<'a> Auditor<'a> {
             });
         }
         let reference = profile.feature_distribution()?;
-        let deletion = Deletion::new(settings.fill, reference.location(), &reference.median());
+        let deletion = Deletion::from_distribution(settings.fill, reference);
+        // Image pixels keep no kinds: a pixel seen only at 0 and 1 is sparse data, not a
+        // yes/no column, and a blurred or drawn intensity between is a valid image.
+        let kinds = match settings.image {
+            Some(_) => FeatureKinds::continuous(d),
+            None => reference.kinds().clone(),
+        };
+        let kinds = &kinds;
+        let names = profile.feature_names();
+        // `auto`: a Gaussian draws 0.4 of a yes/no column; drawing from the nearest
+        // reference rows keeps every value one the data has. Images keep the Gaussian
+        // (their pixel grids are many-valued; draws are rounded to valid values).
+        let sampler_choice = match settings.sampler {
+            Sampler::Auto => match kinds.poorly_gaussian(names) {
+                Some(why) if settings.image.is_none() => {
+                    settings.sampler = Sampler::Neighbours;
+                    Some(format!("neighbours, chosen for {why}"))
+                }
+                _ => {
+                    settings.sampler = Sampler::Gaussian;
+                    None
+                }
+            },
+            _ => None,
+        };
+        let invalid_fill: Vec<usize> = (0..groups.len())
+            .flat_map(|g| groups.members(g).iter().copied())
+            .filter(|&c| !kinds.admits(c, deletion.values()[c]))
+            .collect();
         let rows = Arc::new(reference.rows().to_owned());
         let replacement: Box<dyn PerturbationFamily> = match settings.sampler {
-            Sampler::Gaussian => Box::new(ConditionalGaussian::new(
-                reference.location().clone(),
-                reference.covariance().clone(),
-                settings.draws,
-            )),
+            Sampler::Gaussian | Sampler::Auto => Box::new(
+                ConditionalGaussian::new(
+                    reference.location().clone(),
+                    reference.covariance().clone(),
+                    settings.draws,
+                )
+                .with_kinds(kinds),
+            ),
             Sampler::Neighbours => {
                 Box::new(NearestRows::new(rows, reference.scale(), settings.draws))
             }
@@ -191,7 +229,15 @@ impl<'a> Auditor<'a> {
             replacement_point: reference.location().clone(),
             baselines,
             differences,
+            sampler_choice,
+            invalid_fill,
+            kinds: (!kinds.all_continuous()).then(|| kinds.clone()),
         })
+    }
+
+    /// Why `--sampler auto` chose `neighbours`, when it did.
+    pub fn sampler_choice(&self) -> Option<&str> {
+        self.sampler_choice.as_deref()
     }
 
     /// The groups (players) of every attribution.
@@ -270,7 +316,9 @@ impl<'a> Auditor<'a> {
             )?;
             let all = concatenate![Axis(0), rows.view(), path.path.view()];
             let embedded = self.profile.embed(all.view())?;
-            let p = self.profile.score_embedded(embedded.view())?.p_combined;
+            let p = self
+                .profile
+                .perturbed_p(all.view(), embedded.view(), self.kinds.as_ref())?;
             let p = p.as_slice().expect("contiguous");
             let nb = rows.nrows();
             let (_, baseline_p) = off_manifold(&p[..nb], alpha);
@@ -441,7 +489,9 @@ impl<'a> Auditor<'a> {
         }
         let all = ndarray::concatenate(Axis(0), &parts).expect("same width");
         let embedded = self.profile.embed(all.view())?;
-        let p = self.profile.score_embedded(embedded.view())?.p_combined;
+        let p = self
+            .profile
+            .perturbed_p(all.view(), embedded.view(), self.kinds.as_ref())?;
         let p = p.as_slice().expect("contiguous");
         let nd = deleted.inputs.nrows();
         let nr = replaced.inputs.nrows();
@@ -627,6 +677,7 @@ impl<'a> Auditor<'a> {
             reference_point.view(),
             target,
             alpha,
+            self.kinds.as_ref(),
             &mut self.stream(row, Stream::Probes),
         )?;
         let no_errors = vec![0.0; m];
@@ -665,6 +716,43 @@ impl<'a> Auditor<'a> {
                 declared: None,
             },
         };
+        let uses_fill = match (&supplied_values, &self.settings.method) {
+            (None, _) | (Some(_), None) => true,
+            (Some(_), Some(method)) => matches!(
+                method,
+                Method::Occlusion(_) | Method::Surrogate(_) | Method::ShapleyFilled(_)
+            ),
+        };
+        let invalid_fill = (uses_fill && !self.invalid_fill.is_empty()).then(|| {
+            let kinds = self.kinds.as_ref().map(|k| k.kinds().to_vec()).ok_or(());
+            let names = self.profile.feature_names();
+            let shown: Vec<String> = self
+                .invalid_fill
+                .iter()
+                .take(4)
+                .map(|&c| {
+                    let kind = match kinds.as_ref().map(|k| k[c]) {
+                        Ok(FeatureKind::Integer) => "integer",
+                        Ok(FeatureKind::OneHot(_)) => "one-hot",
+                        Ok(FeatureKind::Constant) => "constant",
+                        _ => "binary",
+                    };
+                    let v = self.deletion.values()[c];
+                    let shown = if v.fract() == 0.0 {
+                        format!("{v}")
+                    } else {
+                        format!("{v:.3}")
+                    };
+                    format!("{} to {shown} ({kind})", names[c])
+                })
+                .collect();
+            let more = self.invalid_fill.len().saturating_sub(4);
+            if more > 0 {
+                format!("{} and {more} more", shown.join(", "))
+            } else {
+                shown.join(", ")
+            }
+        });
         let subject_name = subject.name.to_string();
         let declared_record =
             subject
@@ -685,6 +773,7 @@ impl<'a> Auditor<'a> {
             input_p: p[0],
             p_floor: self.profile.smallest_p_combined(),
             target_mismatch,
+            invalid_fill,
         });
         let reasons = assessment.reasons();
         let mut families = families;

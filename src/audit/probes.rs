@@ -43,7 +43,7 @@ use crate::models::{check_target, Model};
 use crate::neighbours::{Exclusion, NeighbourIndex};
 use crate::perturbation::masking::kept_features;
 use crate::perturbation::PerturbationFamily;
-use crate::profile::Profile;
+use crate::profile::{FeatureKinds, Profile};
 
 /// Probes below this `p_combined` (or below α when larger) are not on the data and do not
 /// count as evidence.
@@ -90,6 +90,7 @@ pub fn probe(
     reference_point: ArrayView1<'_, f64>,
     target: usize,
     alpha: f64,
+    kinds: Option<&FeatureKinds>,
     rng: &mut ChaCha8Rng,
 ) -> Result<OnDataEvidence> {
     let d = input.len();
@@ -141,7 +142,7 @@ pub fn probe(
     check_target(&answers, target)?;
     let scores = answers.column(target);
     let embedded = profile.embed(probes.view())?;
-    let p = profile.score_embedded(embedded.view())?.p_combined;
+    let p = profile.perturbed_p(probes.view(), embedded.view(), kinds)?;
     let floor = alpha.max(PROBE_P);
     let spread = profile.feature_spread();
 

@@ -26,9 +26,11 @@ q_g    = ê_g / â_g                                 support of the credit on th
 U      = Σ_g â_g · clamp((0.25 - q_g) / 0.2, 0, 1)  credit to groups unused on the data
 T      = the top-k groups of |a| with â_g ≥ 0.05
 F      = Σ_{g∈T, e_g opposite to a_g beyond 2 se} â_g / Σ_{g∈T} â_g   sign flips
-K      = 1 - Σ_{g∈T} |e_g| / Σ_{g∈top-k of |e|} |e_g|                top-k change
-M      = ½ Σ_g |a_g / Σ|a| - e_g / Σ|e||                             shares moved
-S      = |ln(Σ|a| / Σ|e|)|                                           scale changed
+C      = the groups with on-data probes; a_C = a with groups outside C set to 0
+T_C    = the top-k groups of |a_C| with â_g ≥ 0.05
+K      = 1 - Σ_{g∈T_C} |e_g| / Σ_{g∈top-k of |e|} |e_g|              top-k change
+M      = ½ Σ_{g∈C} |a_g / Σ|a_C| - e_g / Σ|e||                       shares moved
+S      = |ln(Σ|a_C| / Σ|e|)|                                         scale changed
 D      = 1 - (1 - min(1, 8 U)) (1 - F) (1 - clamp((K - 0.2) / 0.4, 0, 1))
              (1 - clamp((M - 0.2) / 0.3, 0, 1)) (1 - clamp(S - 1, 0, 1))
          (K, M and S count 0 for a piecewise-constant model: along the groups' moves
@@ -201,23 +203,36 @@ pub fn story(subject: &[f64], errors: &[f64], on_data: &OnDataEvidence, top_k: u
     if top_credit > 0.0 {
         story.sign_flips = flipped / top_credit;
     }
+    // K, M and S compare the story with the effects on the groups that were checked on
+    // the data only: credit without probes is `unknown_credit`'s business, not a shift.
     let effects: Vec<f64> = on_data.effect.iter().map(|e| e.unwrap_or(0.0)).collect();
+    let checked: Vec<f64> = (0..m)
+        .map(|g| {
+            if on_data.effect[g].is_some() {
+                subject[g]
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    let checked_total: f64 = checked.iter().map(|v| v.abs()).sum();
     story.on_data_top = super::agreement::top_k(&effects, top_k);
     let best: f64 = story.on_data_top.iter().map(|&g| effects[g].abs()).sum();
-    if best > 0.0 && !story.subject_top.is_empty() {
-        let caught: f64 = story.subject_top.iter().map(|&g| effects[g].abs()).sum();
+    let checked_top: Vec<usize> = super::agreement::top_k(&checked, top_k)
+        .into_iter()
+        .filter(|&g| share[g] >= TOP_SHARE && on_data.effect[g].is_some())
+        .collect();
+    if best > 0.0 && !checked_top.is_empty() {
+        let caught: f64 = checked_top.iter().map(|&g| effects[g].abs()).sum();
         story.top_k_miss = (1.0 - caught / best).clamp(0.0, 1.0);
     }
-    if best > 0.0 {
+    if best > 0.0 && checked_total > 0.0 {
         let effect_norm: f64 = effects.iter().map(|v| v.abs()).sum();
         story.magnitude_shift = 0.5
             * (0..m)
-                .map(|g| (subject[g] / total - effects[g] / effect_norm).abs())
+                .map(|g| (checked[g] / checked_total - effects[g] / effect_norm).abs())
                 .sum::<f64>();
-    }
-    if best > 0.0 {
-        let effect_norm: f64 = effects.iter().map(|v| v.abs()).sum();
-        story.scale_shift = (total / effect_norm).ln().abs();
+        story.scale_shift = (checked_total / effect_norm).ln().abs();
     }
     story.piecewise_constant = on_data.piecewise_constant;
     let [u, f, k, m, s] = story.parts();

@@ -15,6 +15,9 @@ use crate::perturbation::FillValue;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Sampler {
+    /// Chosen from the feature kinds: `neighbours` where a Gaussian models some columns
+    /// poorly (binary, few-valued integer, one-hot), else `gaussian`.
+    Auto,
     /// The conditional Gaussian of the profile's raw-feature distribution.
     Gaussian,
     /// Masked values from the reference rows nearest in the kept features.
@@ -27,13 +30,14 @@ impl FromStr for Sampler {
     type Err = Error;
     fn from_str(text: &str) -> Result<Self> {
         match text {
+            "auto" => Ok(Sampler::Auto),
             "gaussian" => Ok(Sampler::Gaussian),
             "neighbours" | "neighbors" => Ok(Sampler::Neighbours),
             "marginal" => Ok(Sampler::Marginal),
             _ => Err(Error::InvalidSetting {
                 flag: "--sampler",
                 value: text.to_string(),
-                expected: "one of gaussian, neighbours, marginal".into(),
+                expected: "one of auto, gaussian, neighbours, marginal".into(),
             }),
         }
     }
@@ -42,6 +46,7 @@ impl FromStr for Sampler {
 impl fmt::Display for Sampler {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.write_str(match self {
+            Sampler::Auto => "auto",
             Sampler::Gaussian => "gaussian",
             Sampler::Neighbours => "neighbours",
             Sampler::Marginal => "marginal",
@@ -88,7 +93,7 @@ impl Default for AuditSettings {
             steps: 64,
             rule: QuadratureRule::Midpoint,
             fill: FillValue::Zero,
-            sampler: Sampler::Gaussian,
+            sampler: Sampler::Auto,
             baseline: BaselineChoice::Best(crate::baselines::default_candidates(false)),
             image: None,
             target: None,

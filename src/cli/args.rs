@@ -198,8 +198,10 @@ pub struct AttributionArgs {
     /// Replacement draws per mask, averaged.
     #[arg(long, default_value_t = 4, value_name = "D")]
     pub draws: usize,
-    /// How replacement draws masked groups: gaussian, neighbours or marginal.
-    #[arg(long, default_value = "gaussian", value_name = "SAMPLER")]
+    /// How replacement draws masked groups: auto (neighbours where binary, few-valued
+    /// integer or one-hot columns make a Gaussian a poor model, else gaussian), gaussian,
+    /// neighbours or marginal.
+    #[arg(long, default_value = "auto", value_name = "SAMPLER")]
     pub sampler: String,
     /// Path points of the interpolation family.
     #[arg(long, default_value_t = 64, value_name = "M")]
@@ -237,8 +239,13 @@ pub struct AuditArgs {
     /// or zero, mean, median, constant:V, nearest, uniform:N, reference:N, blur:S.
     #[arg(long, default_value = "best", value_name = "NAME")]
     pub baseline: String,
-    /// What deletion sets masked groups to: zero, mean, median, or a number.
-    #[arg(long, default_value = "zero", value_name = "zero|mean|median|VALUE")]
+    /// What deletion sets masked groups to: zero, mean, median, typical (a valid value of
+    /// each column's kind: mean, rounded median, most frequent value or level), or a number.
+    #[arg(
+        long,
+        default_value = "zero",
+        value_name = "zero|mean|median|typical|VALUE"
+    )]
     pub fill: String,
     /// How the supplied explanations were made, so kilter recomputes that method:
     /// occlusion:FILL, surrogate:FILL, shapley:SAMPLER, shapley:FILL or

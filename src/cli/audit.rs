@@ -63,13 +63,17 @@ pub fn image_shape(text: &str) -> Result<ImageShape> {
     })
 }
 
-/// Groups from `--groups`, `--image --patch`, or one per feature.
+/// Groups from `--groups`, `--image --patch`, or one per feature with each one-hot block
+/// of the profile as one group; one per feature when supplied explanations have one
+/// column per feature (`supplied_columns`).
 pub fn groups_for(
     groups: Option<&std::path::Path>,
     image: Option<ImageShape>,
     patch: Option<usize>,
-    names: &[String],
+    profile: &Profile,
+    supplied_columns: Option<usize>,
 ) -> Result<Groups> {
+    let names = profile.feature_names();
     match (groups, image) {
         (Some(path), _) => Groups::from_json_file(path, names),
         (None, Some(shape)) => Groups::image_patches(
@@ -79,7 +83,22 @@ pub fn groups_for(
             patch.unwrap_or(1),
             names.len(),
         ),
-        (None, None) => Ok(Groups::singletons(names)),
+        (None, None) => {
+            let blocks: Vec<Vec<usize>> = match profile.feature_distribution() {
+                Ok(f) => f
+                    .kinds()
+                    .blocks()
+                    .iter()
+                    .map(|b| b.columns.clone())
+                    .collect(),
+                Err(_) => Vec::new(),
+            };
+            let merged = Groups::singletons_and_blocks(names, &blocks);
+            Ok(match supplied_columns {
+                Some(columns) if columns == names.len() => Groups::singletons(names),
+                _ => merged,
+            })
+        }
     }
 }
 
@@ -150,8 +169,17 @@ pub fn run(args: AuditArgs, context: &Context) -> Result<()> {
     let options = csv_options(&args.columns);
     let mut input = MatrixChunks::open(&args.input, &options)?;
     profile.check_input(input.header())?;
-    let names = profile.feature_names();
-    let groups = groups_for(a.groups.as_deref(), image, a.patch, names)?;
+    let supplied_columns = match &args.explanations {
+        Some(path) => Some(MatrixChunks::open(path, &options)?.columns()),
+        None => None,
+    };
+    let groups = groups_for(
+        a.groups.as_deref(),
+        image,
+        a.patch,
+        &profile,
+        supplied_columns,
+    )?;
     let mut supplied = match &args.explanations {
         None => None,
         Some(path) => Some(SuppliedRows::open(path, &options, groups.len())?),
@@ -303,10 +331,13 @@ impl SuppliedRows {
 /// One line on how the audit was run.
 pub fn settings_line(auditor: &Auditor<'_>) -> String {
     let s = auditor.settings();
+    let sampler = match auditor.sampler_choice() {
+        Some(why) => format!("{why} (--sampler auto)"),
+        None => format!("{} sampler", s.sampler),
+    };
     format!(
-        "deletion: {}; replacement: {} sampler, {} draws; {} masks{}; path: baseline {}, {} {} points; seed {}",
+        "deletion: {}; replacement: {sampler}, {} draws; {} masks{}; path: baseline {}, {} {} points; seed {}",
         auditor.deletion_fill(),
-        s.sampler,
         s.draws,
         auditor.masks_per_row(),
         if auditor.masks_per_row() < s.samples {

@@ -41,7 +41,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     let profile = Profile::load(&args.profile)?;
     let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
     profile.check_input(input.header())?;
-    let groups = groups_for(a.groups.as_deref(), image, a.patch, profile.feature_names())?;
+    let groups = groups_for(a.groups.as_deref(), image, a.patch, &profile, None)?;
     let model = load_model(&source, input.columns())?;
     let auditor = Auditor::new(&profile, model.as_ref(), groups, settings)?;
 

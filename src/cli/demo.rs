@@ -100,7 +100,7 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
 
     let groups = Groups::singletons(profile.feature_names());
     let settings = AuditSettings {
-        fill: FillValue::Mean,
+        fill: FillValue::Typical,
         target: Some(1),
         ..AuditSettings::default()
     };
@@ -259,8 +259,8 @@ fn print_summary(
     println!();
     println!(
         "The network was trained on {HISTORY_ROWS} invented segments. Each new segment's \
-         explanation was computed three ways: deletion (masked readings set to the network's \
-         average), replacement (masked readings drawn from the data given the others) and \
+         explanation was computed three ways: deletion (masked readings set to a typical value: \
+         the average reading, the median count of repairs), replacement (masked readings drawn from the data given the others) and \
          integrated gradients; the verdict judges deletion. Segments from unusually high or \
          low pressure zones were built so that filling one pressure with the average fakes a \
          pressure drop no real segment has: the masked inputs leave the data, but the network is \

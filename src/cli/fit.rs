@@ -1,10 +1,10 @@
 //! `kilter fit`: reference corpus in, profile out, with a short summary.
 
-use kilter::corpus::{read_matrix, CsvOptions};
+use kilter::corpus::{CsvOptions, MatrixChunks, MissingCells};
 use kilter::neighbours::IndexChoice;
 use kilter::output::check_output_path;
 use kilter::profile::{Profile, ProfileSettings};
-use kilter::Result;
+use kilter::{Error, Result};
 
 use super::args::{ColumnArgs, FitArgs};
 use super::Context;
@@ -20,13 +20,59 @@ pub fn run(args: FitArgs, context: &Context) -> Result<()> {
     };
     settings.validate()?;
     check_output_path(&args.out, &[&args.reference])?;
-    let reference = read_matrix(&args.reference, &csv_options(&args.columns))?;
+    // Rows with missing cells are left out of the reference, and said so: the scores are
+    // defined on complete rows.
+    let (reference, missing) = MatrixChunks::open(&args.reference, &csv_options(&args.columns))?
+        .keeping_missing()
+        .read_all()?
+        .complete_rows();
+    if reference.rows() == 0 {
+        return Err(Error::TooFewRows {
+            what: format!(
+                "fitting a profile: every row of {} has a missing cell",
+                args.reference.display()
+            ),
+            needed: 1,
+            found: 0,
+        });
+    }
     let profile = settings.fit(&reference)?;
     profile.save(&args.out)?;
     if !context.quiet {
         println!("{}", summary(&profile, &args.out.display().to_string()));
+        if let Some(missing) = missing {
+            println!("{}", missing_line(&missing, &reference.names));
+        }
     }
     Ok(())
+}
+
+/// The line on the reference rows left out for missing cells.
+fn missing_line(missing: &MissingCells, names: &[String]) -> String {
+    let mut columns: Vec<(usize, &String)> = missing
+        .per_column
+        .iter()
+        .copied()
+        .zip(names)
+        .filter(|(n, _)| *n > 0)
+        .collect();
+    columns.sort_by_key(|c| std::cmp::Reverse(c.0));
+    let listed: Vec<String> = columns
+        .iter()
+        .take(5)
+        .map(|(n, name)| format!("{name} {n}"))
+        .collect();
+    let more = columns.len().saturating_sub(5);
+    format!(
+        "  missing cells    {} reference rows left out (missing cells: {}{})",
+        missing.rows,
+        listed.join(", "),
+        if more > 0 {
+            format!(" and {more} more columns")
+        } else {
+            String::new()
+        }
+    )
 }
 
 pub fn csv_options(columns: &ColumnArgs) -> CsvOptions {
@@ -71,6 +117,14 @@ pub fn summary(profile: &Profile, path: &str) -> String {
             profile.feature_names().len(),
             profile.embedded_dim(),
             s.embed
+        ),
+        format!(
+            "  feature kinds    {}",
+            profile
+                .feature_distribution()
+                .ok()
+                .and_then(|f| f.kinds().summary(profile.feature_names()))
+                .unwrap_or_else(|| "all continuous".to_string())
         ),
         format!("  covariance       {shrinkage}"),
         format!(

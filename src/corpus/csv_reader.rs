@@ -49,6 +49,8 @@ struct Columns {
     names: Vec<String>,
     /// Positions of the feature columns among `names`.
     features: Vec<usize>,
+    /// Missing cells read as NaN rather than refused.
+    keep_missing: bool,
 }
 
 enum Mode {
@@ -65,6 +67,11 @@ enum Mode {
 }
 
 impl CsvChunks {
+    /// See [`super::MatrixChunks::keeping_missing`].
+    pub(super) fn keep_missing(&mut self) {
+        self.columns.keep_missing = true;
+    }
+
     /// See [`super::MatrixChunks::with_block_bytes`].
     pub(super) fn set_block_bytes(&mut self, bytes: usize) {
         self.block_bytes = bytes;
@@ -90,6 +97,7 @@ impl CsvChunks {
                 path: path.to_path_buf(),
                 names: Vec::new(),
                 features: Vec::new(),
+                keep_missing: false,
             },
             block_bytes: BLOCK_BYTES,
             rows_done: 0,
@@ -291,13 +299,21 @@ impl Columns {
         for &c in &self.features {
             match parse_cell(cells[c]) {
                 Ok(value) => out.push(value),
+                Err(_) if self.keep_missing && is_missing(cells[c]) => out.push(f64::NAN),
                 Err(fault) => {
+                    let fault = match fault {
+                        CellFault::Empty => CellFault::Empty,
+                        _ if is_missing(cells[c]) => {
+                            CellFault::Missing(String::from_utf8_lossy(cells[c]).trim().to_string())
+                        }
+                        other => other,
+                    };
                     return Err(Error::BadCell {
                         path: self.path.clone(),
                         row,
                         column: ColumnRef::Named(self.names[c].clone()),
                         fault,
-                    })
+                    });
                 }
             }
         }
@@ -401,6 +417,15 @@ fn select_features(path: &Path, names: &[String], options: &CsvOptions) -> Resul
         return Err(header_error(path, HeaderFault::NoFeatures));
     }
     Ok(features)
+}
+
+/// Whether a cell marks a missing value: empty, or `NA`, `N/A`, `NaN`, `null`, `?` in any
+/// case, spaces around allowed (the markers common spreadsheet and data-frame exports
+/// write).
+fn is_missing(raw: &[u8]) -> bool {
+    let text = String::from_utf8_lossy(raw);
+    let text = text.trim().to_ascii_lowercase();
+    matches!(text.as_str(), "" | "na" | "n/a" | "nan" | "null" | "?")
 }
 
 /// Parses one numeric cell; surrounding spaces are allowed.

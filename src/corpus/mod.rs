@@ -37,7 +37,41 @@ pub struct FeatureMatrix {
     pub source: PathBuf,
 }
 
+/// What [`FeatureMatrix::complete_rows`] left out.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct MissingCells {
+    /// Rows left out.
+    pub rows: usize,
+    /// Missing cells per column, in column order.
+    pub per_column: Vec<usize>,
+}
+
 impl FeatureMatrix {
+    /// Leaves out the rows with a missing (NaN) cell; `None` when every row is complete.
+    pub fn complete_rows(self) -> (FeatureMatrix, Option<MissingCells>) {
+        let per_column: Vec<usize> = self
+            .values
+            .columns()
+            .into_iter()
+            .map(|c| c.iter().filter(|v| v.is_nan()).count())
+            .collect();
+        if per_column.iter().all(|&n| n == 0) {
+            return (self, None);
+        }
+        let keep: Vec<usize> = (0..self.values.nrows())
+            .filter(|&r| self.values.row(r).iter().all(|v| !v.is_nan()))
+            .collect();
+        let dropped = self.values.nrows() - keep.len();
+        let values = self.values.select(ndarray::Axis(0), &keep);
+        (
+            FeatureMatrix { values, ..self },
+            Some(MissingCells {
+                rows: dropped,
+                per_column,
+            }),
+        )
+    }
+
     /// Number of rows.
     pub fn rows(&self) -> usize {
         self.values.nrows()
@@ -155,6 +189,17 @@ impl MatrixChunks {
         match &mut self.reader {
             Reader::Csv(csv) => csv.set_block_bytes(bytes),
             Reader::Npy(npy) => npy.set_block_bytes(bytes),
+        }
+        self
+    }
+
+    /// Reads missing cells (empty, `NA`, `N/A`, `NaN`, `null`, `?` in CSV; NaN in `.npy`)
+    /// as NaN instead of refusing them; infinities are still refused. For a reference
+    /// corpus, whose incomplete rows `fit` leaves out ([`FeatureMatrix::complete_rows`]).
+    pub fn keeping_missing(mut self) -> Self {
+        match &mut self.reader {
+            Reader::Csv(csv) => csv.keep_missing(),
+            Reader::Npy(npy) => npy.keep_missing(),
         }
         self
     }

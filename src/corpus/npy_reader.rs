@@ -57,9 +57,16 @@ pub(super) struct NpyChunks {
     rows_done: usize,
     /// A Fortran-order array, read whole and transposed to rows, still to hand out.
     whole: Option<Vec<f64>>,
+    /// NaN read as a missing value rather than refused.
+    keep_missing: bool,
 }
 
 impl NpyChunks {
+    /// See [`super::MatrixChunks::keeping_missing`].
+    pub(super) fn keep_missing(&mut self) {
+        self.keep_missing = true;
+    }
+
     /// See [`super::MatrixChunks::with_block_bytes`].
     pub(super) fn set_block_bytes(&mut self, bytes: usize) {
         self.block_bytes = bytes;
@@ -75,6 +82,7 @@ impl NpyChunks {
             block_bytes: BLOCK_BYTES,
             rows_done: 0,
             whole: None,
+            keep_missing: false,
         };
         if chunks.header.fortran_order {
             let (rows, columns) = (chunks.header.rows, chunks.header.columns);
@@ -116,7 +124,7 @@ impl NpyChunks {
         let values = match self.whole.take() {
             Some(all) => {
                 self.rows_done = rows;
-                check_finite(&self.path, &all, 0, columns)?;
+                check_finite(&self.path, &all, 0, columns, self.keep_missing)?;
                 all
             }
             None => {
@@ -126,7 +134,13 @@ impl NpyChunks {
                 // Faults are reported in file order, whatever the block size: a bad cell
                 // before the point where the file ends early, or before bytes left over
                 // after the data, is reported first.
-                check_finite(&self.path, &values, self.rows_done, columns)?;
+                check_finite(
+                    &self.path,
+                    &values,
+                    self.rows_done,
+                    columns,
+                    self.keep_missing,
+                )?;
                 if !complete {
                     return Err(truncated(&self.path));
                 }
@@ -243,10 +257,20 @@ fn truncated(path: &Path) -> Error {
     )
 }
 
-/// Refuses the first value that is NaN or infinite, scanning row by row so that the cell
-/// reported is the first a person meets; `first_row` is the 0-based row of `values[0]`.
-fn check_finite(path: &Path, values: &[f64], first_row: usize, columns: usize) -> Result<()> {
-    match values.iter().position(|v| !v.is_finite()) {
+/// Refuses the first value that is NaN (unless `keep_missing`) or infinite, scanning row
+/// by row so that the cell reported is the first a person meets; `first_row` is the
+/// 0-based row of `values[0]`.
+fn check_finite(
+    path: &Path,
+    values: &[f64],
+    first_row: usize,
+    columns: usize,
+    keep_missing: bool,
+) -> Result<()> {
+    match values
+        .iter()
+        .position(|v| !(v.is_finite() || keep_missing && v.is_nan()))
+    {
         Some(at) => Err(Error::BadCell {
             path: path.to_path_buf(),
             row: first_row + at / columns + 1,

@@ -24,6 +24,7 @@ use rand_distr::{Distribution, StandardNormal};
 use super::PerturbationFamily;
 use crate::error::{Error, Result};
 use crate::linalg;
+use crate::profile::FeatureKinds;
 
 /// Stored factor entries at most (8 bytes each): bounds the cache near 128 MB.
 const CACHE_BUDGET: usize = 16 << 20;
@@ -35,6 +36,8 @@ pub struct ConditionalGaussian {
     covariance: Array2<f64>,
     draws: usize,
     cache: RwLock<Cache>,
+    /// Kinds of the features, when some are not continuous: draws are made valid values.
+    kinds: Option<FeatureKinds>,
 }
 
 #[derive(Debug, Default)]
@@ -64,7 +67,15 @@ impl ConditionalGaussian {
             covariance,
             draws,
             cache: RwLock::new(Cache::default()),
+            kinds: None,
         }
+    }
+
+    /// Draws made valid values of each feature's kind (integers rounded, binary columns
+    /// and one-hot blocks given one of their levels); a no-op for continuous features.
+    pub fn with_kinds(mut self, kinds: &FeatureKinds) -> Self {
+        self.kinds = (!kinds.all_continuous()).then(|| kinds.clone());
+        self
     }
 
     /// Mean and covariance of the masked features given the kept ones, in the order of
@@ -206,6 +217,11 @@ impl PerturbationFamily for ConditionalGaussian {
             row.assign(&input);
             for (j, &m) in f.masked.iter().enumerate() {
                 row[m] = sample[j];
+            }
+            if let Some(kinds) = &self.kinds {
+                let mut values = row.to_vec();
+                kinds.make_valid(&mut values, kept);
+                row.assign(&ArrayView1::from(&values));
             }
         }
         Ok(())

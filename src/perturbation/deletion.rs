@@ -7,6 +7,7 @@ use rand_chacha::ChaCha8Rng;
 
 use super::PerturbationFamily;
 use crate::error::{Error, Result};
+use crate::profile::FeatureDistribution;
 
 /// `--fill`: what a deleted feature becomes.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -17,6 +18,10 @@ pub enum FillValue {
     Mean,
     /// Each feature's median over the fitted reference rows.
     Median,
+    /// A valid, typical value of each feature's kind (the mean of a continuous column,
+    /// the rounded median of an integer one, the most frequent value of a binary column or
+    /// level of a one-hot block).
+    Typical,
     /// One constant for every feature.
     Constant(f64),
 }
@@ -28,12 +33,13 @@ impl FromStr for FillValue {
             "zero" => Ok(FillValue::Zero),
             "mean" => Ok(FillValue::Mean),
             "median" => Ok(FillValue::Median),
+            "typical" => Ok(FillValue::Typical),
             _ => match text.parse::<f64>() {
                 Ok(v) if v.is_finite() => Ok(FillValue::Constant(v)),
                 _ => Err(Error::InvalidSetting {
                     flag: "--fill",
                     value: text.to_string(),
-                    expected: "zero, mean, median, or a finite number".into(),
+                    expected: "zero, mean, median, typical, or a finite number".into(),
                 }),
             },
         }
@@ -46,6 +52,7 @@ impl std::fmt::Display for FillValue {
             FillValue::Zero => f.write_str("zero"),
             FillValue::Mean => f.write_str("mean"),
             FillValue::Median => f.write_str("median"),
+            FillValue::Typical => f.write_str("typical"),
             FillValue::Constant(v) => write!(f, "{v}"),
         }
     }
@@ -59,17 +66,37 @@ pub struct Deletion {
 }
 
 impl Deletion {
-    /// Deletion to `fill`, given the reference mean and median of each feature.
+    /// Deletion to `fill`, given the reference mean and median of each feature
+    /// (`typical` without feature kinds is the median).
     pub fn new(
         fill: FillValue,
         reference_mean: &Array1<f64>,
         reference_median: &Array1<f64>,
+    ) -> Deletion {
+        Deletion::with_typical(fill, reference_mean, reference_median, reference_median)
+    }
+
+    /// Deletion to `fill` over a fitted distribution, feature kinds included.
+    pub fn from_distribution(fill: FillValue, reference: &FeatureDistribution) -> Deletion {
+        let typical = match fill {
+            FillValue::Typical => reference.typical(),
+            _ => reference.location().clone(),
+        };
+        Deletion::with_typical(fill, reference.location(), &reference.median(), &typical)
+    }
+
+    fn with_typical(
+        fill: FillValue,
+        reference_mean: &Array1<f64>,
+        reference_median: &Array1<f64>,
+        typical: &Array1<f64>,
     ) -> Deletion {
         let d = reference_mean.len();
         let (values, label) = match fill {
             FillValue::Zero => (Array1::zeros(d), "zero".to_string()),
             FillValue::Mean => (reference_mean.clone(), "mean".to_string()),
             FillValue::Median => (reference_median.clone(), "median".to_string()),
+            FillValue::Typical => (typical.clone(), "typical".to_string()),
             FillValue::Constant(v) => (Array1::from_elem(d, v), format!("constant:{v}")),
         };
         Deletion { values, label }

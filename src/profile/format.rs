@@ -591,6 +591,7 @@ fn build(
                     Array1::from(feature_location),
                     Array2::from_shape_vec((p, p), feature_covariance)
                         .map_err(|_| bad("feature covariance"))?,
+                    &header.feature_names,
                 )
                 .ok_or_else(|| bad("the feature distribution"))?,
             )

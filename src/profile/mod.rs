@@ -8,8 +8,10 @@
 
 mod distribution;
 mod format;
+mod kinds;
 
 pub use distribution::FeatureDistribution;
+pub use kinds::{FeatureKind, FeatureKinds, OneHotBlock};
 
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use rand::seq::SliceRandom;
@@ -198,7 +200,7 @@ impl ProfileSettings {
                 rows: embedded_fit.nrows(),
             });
         }
-        let features = FeatureDistribution::fit(fit_values)?;
+        let features = FeatureDistribution::fit(fit_values, &reference.names)?;
         let estimate = self.covariance.estimate(embedded_fit.view())?;
         let mahalanobis = MahalanobisModel::new(&estimate, embedded_fit.nrows())?;
 
@@ -443,6 +445,33 @@ impl Profile {
     /// Embeds raw input rows.
     pub fn embed(&self, rows: ArrayView2<'_, f64>) -> Result<Array2<f64>> {
         self.embedding.embed(rows)
+    }
+
+    /// `p_combined` of perturbed raw rows (masked, drawn, or on a path), with one rule on
+    /// top of the distances: a row that holds a value its column never takes (0.31 in a
+    /// yes/no column, 2.6 visits, two levels of a one-hot block) is not on the data
+    /// whatever its distances say, and gets the smallest p the profile can give.
+    /// `embedded` is `rows` embedded ([`Profile::embed`]); `kinds` the feature kinds to
+    /// hold the rows to (none for image pixels, whose few observed levels are sparse data
+    /// rather than a kind).
+    pub fn perturbed_p(
+        &self,
+        rows: ArrayView2<'_, f64>,
+        embedded: ArrayView2<'_, f64>,
+        kinds: Option<&FeatureKinds>,
+    ) -> Result<Array1<f64>> {
+        let mut p = self.score_embedded(embedded)?.p_combined;
+        if let Some(kinds) = kinds {
+            if !kinds.all_continuous() {
+                let floor = self.smallest_p_combined();
+                for (row, p) in rows.outer_iter().zip(p.iter_mut()) {
+                    if !kinds.row_is_valid(row) {
+                        *p = floor;
+                    }
+                }
+            }
+        }
+        Ok(p)
     }
 
     /// Off-manifold scores of already embedded rows, as columns.

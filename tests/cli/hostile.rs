@@ -12,13 +12,13 @@
 //!     the pre-existing `prior.jsonl` / `prior.kprofile` unchanged, no stray temporary
 //!     file (the assertion helper snapshots the whole directory before and after).
 //!
-//! The suite holds 193 cases (the test `the_documented_count_is_the_real_count` keeps
+//! The suite holds 189 cases (the test `the_documented_count_is_the_real_count` keeps
 //! this number honest):
 //!
 //! | category | cases |
 //! | --- | --- |
-//! | CSV matrix faults (empty file, header only, ragged row, NaN, inf, text and empty cells, duplicate and empty column names) through fit, score, predict, audit `--input`, audit `--explanations` and baseline | 54 |
-//! | `.npy` faults (integer and half-precision dtypes, rank 1 and 3, truncated data, bad magic, format version 3, trailing bytes, NaN) through fit and score | 18 |
+//! | CSV matrix faults (empty file, header only, ragged row, NaN, inf, text and empty cells, duplicate and empty column names) through fit, score, predict, audit `--input`, audit `--explanations` and baseline; missing cells (NaN, `n/a`, empty) not through fit, which leaves such reference rows out (tests/cli/kinds.rs) | 51 |
+//! | `.npy` faults (integer and half-precision dtypes, rank 1 and 3, truncated data, bad magic, format version 3, trailing bytes, NaN) through fit and score, NaN through score only | 17 |
 //! | accepted forms: BOM + CRLF through all six readers, Fortran order, big-endian, a single input row, more features than rows under shrinkage, a model flooding stderr | 11 |
 //! | fit: a single row, more features than rows (empirical), constant, duplicated and identical columns, `--k` 0, at and above the row count, `--holdout` out of range or too large for the rows, bad `--embed` | 14 |
 //! | out-of-range and malformed flags of score, predict, audit and baseline | 27 |
@@ -37,7 +37,7 @@ use std::path::{Path, PathBuf};
 use crate::harness::{kilter, repo, temp_dir, write_model, write_npy};
 
 /// Cases this file documents at the top; see `the_documented_count_is_the_real_count`.
-const DOCUMENTED_CASES: usize = 193;
+const DOCUMENTED_CASES: usize = 189;
 
 /// The wine corpus's 13 feature names, in file order.
 const NAMES: [&str; 13] = [
@@ -455,7 +455,7 @@ fn csv_faults() -> Vec<(&'static str, Vec<u8>, Vec<&'static str>)> {
         (
             "nan-cell",
             with_cell(3, "ash", "NaN").into_bytes(),
-            vec!["row 3", "column \"ash\"", "not a finite number"],
+            vec!["row 3", "column \"ash\"", "\"NaN\" marks a missing value"],
         ),
         (
             "inf-cell",
@@ -465,7 +465,7 @@ fn csv_faults() -> Vec<(&'static str, Vec<u8>, Vec<&'static str>)> {
         (
             "text-cell",
             with_cell(2, "hue", "n/a").into_bytes(),
-            vec!["row 2", "column \"hue\"", "\"n/a\" is not a number"],
+            vec!["row 2", "column \"hue\"", "\"n/a\" marks a missing value"],
         ),
         (
             "empty-cell",
@@ -489,6 +489,10 @@ fn csv_matrix_cases() -> Vec<Case> {
     let mut cases = Vec::new();
     for (fault, bytes, words) in csv_faults() {
         for (reader, args) in readers("bad.csv") {
+            // fit reads missing cells and leaves their rows out of the reference.
+            if reader == "fit" && ["nan-cell", "text-cell", "empty-cell"].contains(&fault) {
+                continue;
+            }
             let mut fragments = vec!["bad.csv"];
             fragments.extend(&words);
             cases.push(
@@ -573,6 +577,9 @@ fn npy_cases() -> Vec<Case> {
             ("fit", fit_args("bad.npy")),
             ("score", score_args("bad.npy")),
         ] {
+            if reader == "fit" && fault == "nan" {
+                continue;
+            }
             let mut fragments = vec!["bad.npy"];
             fragments.extend(&words);
             cases.push(
@@ -1240,7 +1247,7 @@ fn the_documented_count_is_the_real_count() {
     ];
     assert_eq!(
         counts,
-        [54, 18, 11, 14, 27, 14, 6, 14, 17, 18],
+        [51, 17, 11, 14, 27, 14, 6, 14, 17, 18],
         "update the table at the top of hostile.rs"
     );
     assert_eq!(counts.iter().sum::<usize>(), DOCUMENTED_CASES);

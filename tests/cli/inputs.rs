@@ -118,20 +118,36 @@ fn bad_cells_name_file_row_and_column() {
             "\"five\" is not a number",
         ],
     );
-    let nan = GOOD.replace("4,4,2.0", "4,4,NaN");
-    refused(
-        nan.as_bytes(),
-        &[],
-        &["row 4", "column \"c\"", "not a finite number"],
-    );
+    // Missing cells are not refused by fit: it leaves their rows out of the reference and
+    // says so (the rule in the README); rows to score must be complete.
+    for (text, listed) in [
+        (GOOD.replace("4,4,2.0", "4,4,NaN"), "c 1"),
+        (GOOD.replace("2,1,0.5", "2,,0.5"), "b 1"),
+    ] {
+        let dir = temp_dir();
+        std::fs::write(dir.path().join("in.csv"), &text).unwrap();
+        let run = fit(dir.path(), "in.csv", &[]);
+        run.expect_status(0);
+        let line = format!("missing cells    1 reference rows left out (missing cells: {listed})");
+        assert!(run.stdout.contains(&line), "{}", run.stdout);
+        assert!(
+            run.stdout.contains("reference rows   5 (5 fitted)"),
+            "{}",
+            run.stdout
+        );
+        kilter(
+            dir.path(),
+            &["score", "--profile", "p.kprofile", "--input", "in.csv"],
+        )
+        .expect_status(2)
+        .expect_stderr(&["in.csv", "must be complete"]);
+    }
     let inf = GOOD.replace("5,7,3.0", "5,-inf,3.0");
     refused(
         inf.as_bytes(),
         &[],
         &["row 5", "column \"b\"", "not a finite number"],
     );
-    let empty = GOOD.replace("2,1,0.5", "2,,0.5");
-    refused(empty.as_bytes(), &[], &["row 2", "column \"b\"", "empty"]);
 }
 
 #[test]
@@ -193,14 +209,44 @@ fn numpy_files_of_both_widths_and_versions_load_alike() {
 #[test]
 fn bad_numpy_files_are_refused() {
     let dir = temp_dir();
-    let one_nan: Vec<u8> = [1.0, 2.0, f64::NAN, 4.0]
-        .iter()
-        .flat_map(|v: &f64| v.to_le_bytes())
-        .collect();
-    write_npy(&dir.path().join("nan.npy"), 1, "<f8", &[2, 2], &one_nan);
-    fit(dir.path(), "nan.npy", &[])
+    let bytes =
+        |values: &[f64]| -> Vec<u8> { values.iter().flat_map(|v| v.to_le_bytes()).collect() };
+    let one_inf = bytes(&[1.0, 2.0, f64::INFINITY, 4.0]);
+    write_npy(&dir.path().join("inf.npy"), 1, "<f8", &[2, 2], &one_inf);
+    fit(dir.path(), "inf.npy", &[])
         .expect_status(2)
-        .expect_stderr(&["nan.npy", "row 2", "column 1", "not a finite number"]);
+        .expect_stderr(&["inf.npy", "row 2", "column 1", "not a finite number"]);
+    // A NaN is a missing value: fit leaves its row out, score refuses it.
+    let nan_dir = temp_dir();
+    let one_nan = bytes(&[
+        1.0,
+        2.0,
+        3.0,
+        1.0,
+        f64::NAN,
+        4.0,
+        2.0,
+        5.0,
+        4.0,
+        4.0,
+        5.0,
+        7.0,
+    ]);
+    write_npy(&nan_dir.path().join("nan.npy"), 1, "<f8", &[6, 2], &one_nan);
+    let run = fit(nan_dir.path(), "nan.npy", &[]);
+    run.expect_status(0);
+    assert!(
+        run.stdout
+            .contains("missing cells    1 reference rows left out (missing cells: 1 1)"),
+        "{}",
+        run.stdout
+    );
+    kilter(
+        nan_dir.path(),
+        &["score", "--profile", "p.kprofile", "--input", "nan.npy"],
+    )
+    .expect_status(2)
+    .expect_stderr(&["nan.npy", "row 3", "column 1", "not a finite number"]);
     write_npy(&dir.path().join("int.npy"), 1, "<i8", &[2, 2], &[0u8; 32]);
     fit(dir.path(), "int.npy", &[])
         .expect_status(2)

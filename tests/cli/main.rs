@@ -17,6 +17,7 @@ mod groups;
 mod hostile;
 mod inputs;
 mod interrupt;
+mod kinds;
 mod models;
 mod neighbours;
 mod onnx;

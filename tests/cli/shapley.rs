@@ -371,7 +371,7 @@ mod sampled_standard_errors {
         let d = 12;
         let rows = data.values.slice(ndarray::s![.., ..d]).to_owned();
         let input = rows.row(7).to_owned();
-        let distribution = FeatureDistribution::fit(rows).unwrap();
+        let distribution = FeatureDistribution::fit(rows, &data.names[..d]).unwrap();
         let w = [
             0.8, -0.5, 0.6, 0.4, -0.9, 0.3, 0.7, -0.6, 0.5, -0.2, 0.9, -0.4,
         ];
@@ -424,7 +424,7 @@ mod sampled_standard_errors {
         let pairs: Vec<[usize; 2]> = (0..15).map(|g| [2 * g, 2 * g + 1]).collect();
         std::fs::write(&path, serde_json::to_string(&pairs).unwrap()).unwrap();
         let groups = Groups::from_json_file(&path, &fit.names).unwrap();
-        let distribution = FeatureDistribution::fit(fit.values.clone()).unwrap();
+        let distribution = FeatureDistribution::fit(fit.values.clone(), &fit.names).unwrap();
         let mut failures = Vec::new();
         for (name, family) in families(&distribution, 4) {
             let (sd, rms) = spread_and_reported(&model, family.as_ref(), &input, &groups, 160);
