@@ -10,6 +10,7 @@ mod baselines;
 mod calibration;
 mod demo;
 mod determinism;
+mod duplicates;
 mod encoder;
 mod families;
 mod golden;
