@@ -8,6 +8,7 @@ mod tolerance;
 mod audit;
 mod baselines;
 mod calibration;
+mod declared;
 mod demo;
 mod determinism;
 mod duplicates;
