@@ -38,7 +38,9 @@ use crate::stats::{CalibrationScores, CovarianceEstimate, MahalanobisModel};
 
 /// The format's name, recorded in the header.
 pub const FORMAT_NAME: &str = "kilter-profile";
-/// The format version this build writes and reads.
+/// The format version this build writes and reads. (`lof_k_distance` holds each fitted
+/// row's k-distance over distinct locations; on fitted rows without duplicates that is the
+/// k-distance earlier builds wrote, and with duplicates only the values differ.)
 pub const FORMAT_VERSION: u32 = 4;
 
 const SIGNATURE: &[u8; 12] = b"\x89KLTPROF\r\n\x1a\n";

@@ -206,7 +206,7 @@ impl ProfileSettings {
 
         let index = ReferenceIndex::build(self.index, embedded_fit)?;
         let in_sample = index.k_nearest(index.rows(), self.k, Exclusion::SameIndex)?;
-        let lof = LocalOutlierFactor::fit(&in_sample);
+        let lof = LocalOutlierFactor::fit(&index, &in_sample)?;
 
         // Calibrated through the same index as every later score, so that the p-values
         // stay valid when the index is approximate.
