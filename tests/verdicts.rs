@@ -144,9 +144,9 @@ fn ci_cases_meet_the_verdict_targets() {
     assert!(missed.is_empty(), "targets missed: {missed:?}\n{report}");
 }
 
-/// What the verdict achieves today on the CI subset, measured (2026-12-05: honest reliable
-/// 0.875, honest unreliable 0.094, artefact flagged 0.941, artefact unreliable 0.941,
-/// AUROC 0.965), kept as floors with a margin so that a change that makes the verdict
+/// What the verdict achieves today on the CI subset, measured (2026-12-05, with feature
+/// kinds: honest reliable 0.875, honest unreliable 0.062, artefact flagged 1.000, artefact
+/// unreliable 1.000, AUROC 0.998), kept as floors with a margin so that a change that makes the verdict
 /// worse fails here. Raise them as the verdict improves; the targets are in
 /// `ci_cases_meet_the_verdict_targets`.
 #[test]
@@ -159,8 +159,8 @@ fn ci_cases_hold_the_measured_floors() {
         "too few decided cases to judge: {report}"
     );
     assert!(summary.honest_reliable >= 0.8, "{report}");
-    assert!(summary.honest_unreliable <= 0.15, "{report}");
-    assert!(summary.artefact_flagged >= 0.88, "{report}");
-    assert!(summary.artefact_unreliable >= 0.85, "{report}");
-    assert!(summary.auroc >= 0.93, "{report}");
+    assert!(summary.honest_unreliable <= 0.1, "{report}");
+    assert!(summary.artefact_flagged >= 0.94, "{report}");
+    assert!(summary.artefact_unreliable >= 0.9, "{report}");
+    assert!(summary.auroc >= 0.96, "{report}");
 }

@@ -16,7 +16,7 @@ use crate::perturbation::FillValue;
 #[serde(rename_all = "kebab-case")]
 pub enum Sampler {
     /// Chosen from the feature kinds: `neighbours` where a Gaussian models some columns
-    /// poorly (binary, few-valued integer, one-hot), else `gaussian`.
+    /// poorly (binary, coarse integer, one-hot), else `gaussian`.
     Auto,
     /// The conditional Gaussian of the profile's raw-feature distribution.
     Gaussian,

@@ -198,7 +198,7 @@ pub struct AttributionArgs {
     /// Replacement draws per mask, averaged.
     #[arg(long, default_value_t = 4, value_name = "D")]
     pub draws: usize,
-    /// How replacement draws masked groups: auto (neighbours where binary, few-valued
+    /// How replacement draws masked groups: auto (neighbours where binary, coarse
     /// integer or one-hot columns make a Gaussian a poor model, else gaussian), gaussian,
     /// neighbours or marginal.
     #[arg(long, default_value = "auto", value_name = "SAMPLER")]

@@ -48,13 +48,18 @@ pub struct FeatureKinds {
     blocks: Vec<OneHotBlock>,
     /// Smallest and largest fitted value of each column.
     range: Vec<(f64, f64)>,
-    /// Distinct fitted values of each column, counted up to [`FEW_LEVELS`] + 1.
-    levels: Vec<usize>,
+    /// Whether each column is coarse: an integer column whose whole-number steps are large
+    /// against its spread (standard deviation at most [`COARSE_SD`] units).
+    coarse: Vec<bool>,
 }
 
-/// An integer column with at most this many distinct values is modelled poorly by a
-/// Gaussian (a count of visits, a score from 1 to 5); one with more is close to continuous.
-pub const FEW_LEVELS: usize = 10;
+/// An integer column whose standard deviation is at most this many units is coarse: a
+/// whole-number step is a tenth of its spread or more, so 2.6 of it (visits, repairs, a
+/// score from 1 to 5) is not a value it takes and a Gaussian models it poorly. With a
+/// larger spread (99.7 mg of a whole-milligram measurement with a spread of 14 mg) the
+/// steps are fine and the column is as good as continuous. The threshold is kilter's
+/// choice.
+pub const COARSE_SD: f64 = 10.0;
 
 impl FeatureKinds {
     /// Reads the kinds off the fitted rows; `names` find the shared prefix of a one-hot
@@ -63,18 +68,12 @@ impl FeatureKinds {
         let d = rows.ncols();
         let mut range = Vec::with_capacity(d);
         let mut kinds = Vec::with_capacity(d);
-        let mut levels = Vec::with_capacity(d);
+        let mut coarse = Vec::with_capacity(d);
         for column in rows.columns() {
-            let mut seen: Vec<f64> = Vec::with_capacity(FEW_LEVELS + 1);
-            for &v in column.iter() {
-                if !seen.contains(&v) {
-                    seen.push(v);
-                    if seen.len() > FEW_LEVELS {
-                        break;
-                    }
-                }
-            }
-            levels.push(seen.len());
+            let n = column.len().max(1) as f64;
+            let mean = column.sum() / n;
+            let sd = (column.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / n).sqrt();
+            coarse.push(sd <= COARSE_SD);
             let (low, high) = column
                 .iter()
                 .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
@@ -127,12 +126,12 @@ impl FeatureKinds {
             kinds,
             blocks,
             range,
-            levels,
+            coarse,
         }
     }
 
     /// Why a Gaussian would model these features poorly, or `None` if it would not:
-    /// the binary columns, the integer columns with few levels and the one-hot blocks.
+    /// the binary columns, the coarse integer columns and the one-hot blocks.
     pub fn poorly_gaussian(&self, names: &[String]) -> Option<String> {
         let columns = |pick: &dyn Fn(usize) -> bool| -> Vec<&str> {
             (0..self.kinds.len())
@@ -141,9 +140,8 @@ impl FeatureKinds {
                 .collect()
         };
         let binary = columns(&|c| self.kinds[c] == FeatureKind::Binary);
-        let counts =
-            columns(&|c| self.kinds[c] == FeatureKind::Integer && self.levels[c] <= FEW_LEVELS);
-        self.describe(&[("binary", binary), ("few-valued integer", counts)], names)
+        let counts = columns(&|c| self.kinds[c] == FeatureKind::Integer && self.coarse[c]);
+        self.describe(&[("binary", binary), ("coarse integer", counts)], names)
     }
 
     /// "LABEL a, b; ...; one-hot (x, y, z)" over the non-empty lists and every block.
@@ -166,7 +164,7 @@ impl FeatureKinds {
             kinds: vec![FeatureKind::Continuous; d],
             blocks: Vec::new(),
             range: vec![(f64::NEG_INFINITY, f64::INFINITY); d],
-            levels: vec![FEW_LEVELS + 1; d],
+            coarse: vec![false; d],
         }
     }
 
@@ -186,15 +184,15 @@ impl FeatureKinds {
     }
 
     /// Whether `value` is one the column can take: any number for a continuous column or
-    /// an integer one with many levels (how far it lies is the scores' business; 99.7 mg
+    /// an integer one that is not coarse (how far it lies is the scores' business; 99.7 mg
     /// of a whole-milligram measurement is not a different kind of value), a whole number
-    /// within the fitted range for a few-valued integer one, one of the observed values
+    /// within the fitted range for a coarse integer one, one of the observed values
     /// otherwise.
     pub fn admits(&self, column: usize, value: f64) -> bool {
         let (low, high) = self.range[column];
         match self.kinds[column] {
             FeatureKind::Continuous => value.is_finite(),
-            FeatureKind::Integer if self.levels[column] > FEW_LEVELS => value.is_finite(),
+            FeatureKind::Integer if !self.coarse[column] => value.is_finite(),
             FeatureKind::Integer => (low..=high).contains(&value) && value.fract() == 0.0,
             FeatureKind::Binary | FeatureKind::Constant | FeatureKind::OneHot(_) => {
                 value == low || value == high
