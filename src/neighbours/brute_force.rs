@@ -593,11 +593,15 @@ impl BruteForceIndex {
         // Each query as [q - center, ‖q - center‖², 1], rounded as the rows were.
         let mut augmented = vec![0.0_f32; m * width];
         let mut query_norms = Vec::with_capacity(m);
+        // A query whose centred coordinates single precision cannot hold (1e20, or an
+        // infinity from the embedding) is searched in double precision alone.
+        let mut query_fits = Vec::with_capacity(m);
         for (out, q) in augmented.chunks_exact_mut(width).zip(queries.outer_iter()) {
-            let (norm, _) = centre_rounded(q, self.center.view(), &mut out[..d]);
+            let (norm, largest) = centre_rounded(q, self.center.view(), &mut out[..d]);
             out[d] = norm as f32;
             out[d + 1] = 1.0;
             query_norms.push(norm);
+            query_fits.push(largest < SINGLE_PRECISION_LIMIT && norm.is_finite());
         }
         let mut lists: Vec<Candidates> = (0..m).map(|_| Candidates::new(keep)).collect();
         match self.pass {
@@ -637,6 +641,9 @@ impl BruteForceIndex {
             .map(|(qi, list)| {
                 let query = queries.row(qi);
                 let own = first_query + qi;
+                if !query_fits[qi] {
+                    return self.exhaustive(query, own, k, exclusion);
+                }
                 let boundary = list.items.last().map(|&(d, _)| d).unwrap_or(f64::INFINITY);
                 let mut exact: Vec<(f64, usize)> = list
                     .items

@@ -476,14 +476,22 @@ impl Profile {
 
     /// Off-manifold scores of already embedded rows, as columns.
     pub fn score_embedded(&self, embedded: ArrayView2<'_, f64>) -> Result<BatchScores> {
-        let d2 = self.mahalanobis.squared_distances(embedded);
+        // A score that overflows (an input of 1e300, whose distance squared is infinite or
+        // NaN) is as atypical as a score can be: the largest finite number, so that it
+        // stays a number in every record and its p-value is the smallest there is.
+        let atypical = |v: f64| if v.is_finite() { v } else { f64::MAX };
+        let d2 = self.mahalanobis.squared_distances(embedded).mapv(atypical);
         let nn = self
             .index
             .k_nearest(embedded, self.settings.k, Exclusion::None)?;
         let k = self.settings.k;
-        let knn_kth = nn.distances.column(k - 1).to_owned();
-        let knn_mean = nn.distances.mean_axis(Axis(1)).expect("k >= 1");
-        let lof = self.lof.score(&nn);
+        let knn_kth = nn.distances.column(k - 1).mapv(atypical);
+        let knn_mean = nn
+            .distances
+            .mean_axis(Axis(1))
+            .expect("k >= 1")
+            .mapv(atypical);
+        let lof = self.lof.score(&nn).mapv(atypical);
         let p_mahalanobis = d2.mapv(|s| self.calibration_mahalanobis.p_value(s));
         let p_knn = knn_kth.mapv(|s| self.calibration_knn.p_value(s));
         let p_combined = ndarray::Zip::from(&p_mahalanobis)

@@ -355,3 +355,73 @@ fn row_numbers_survive_parallel_parsing() {
         ]);
     }
 }
+
+#[test]
+fn extreme_values_score_as_far_from_the_data_as_a_score_can_be() {
+    // A cell of 1e20 once slipped through the single-precision candidate pass as distance
+    // 0, and 1e300 or 1.7e308 overflowed to a missing Mahalanobis distance with p = 1: the
+    // most extreme inputs looked fully typical. By the definition of the conformal p-value,
+    // (1 + #{calibration scores >= s}) / (1 + n), an input beyond every calibration score
+    // has p = 1 / (1 + n), the smallest there is.
+    let dir = temp_dir();
+    let wine = std::fs::read_to_string(crate::harness::repo("reference-corpora/wine.csv")).unwrap();
+    std::fs::write(dir.path().join("wine.csv"), &wine).unwrap();
+    kilter(
+        dir.path(),
+        &[
+            "fit",
+            "--reference",
+            "wine.csv",
+            "--label-column",
+            "cultivar",
+            "--holdout",
+            "0",
+            "--out",
+            "w.kprofile",
+        ],
+    )
+    .expect_status(0);
+    let lines: Vec<&str> = wine.lines().collect();
+    let first: Vec<&str> = lines[1].split(',').collect();
+    let rows: Vec<String> = ["1e20", "1e300", "1.7e308", "-1.7e308"]
+        .iter()
+        .map(|v| {
+            let mut cells = first.clone();
+            cells[0] = v;
+            cells.join(",")
+        })
+        .collect();
+    std::fs::write(
+        dir.path().join("q.csv"),
+        format!("{}\n{}\n", lines[0], rows.join("\n")),
+    )
+    .unwrap();
+    kilter(
+        dir.path(),
+        &[
+            "score",
+            "--profile",
+            "w.kprofile",
+            "--input",
+            "q.csv",
+            "--label-column",
+            "cultivar",
+            "--out",
+            "s.jsonl",
+        ],
+    )
+    .expect_status(0);
+    let records = crate::harness::read_scores(&dir.path().join("s.jsonl"));
+    let smallest = 1.0 / 179.0;
+    for r in &records {
+        assert!(r.knn_kth >= 1e19, "row {}: {}", r.row, r.knn_kth);
+        assert!(
+            r.mahalanobis_d2 >= 1e38,
+            "row {}: {}",
+            r.row,
+            r.mahalanobis_d2
+        );
+        assert!((r.p_mahalanobis - smallest).abs() < 1e-12, "row {}", r.row);
+        assert!((r.p_knn - smallest).abs() < 1e-12, "row {}", r.row);
+    }
+}
