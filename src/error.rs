@@ -306,6 +306,17 @@ pub enum Error {
         expected: String,
     },
 
+    /// The settings ask for more working memory than the machine has available.
+    #[error(
+        "these settings need about {needed_gb:.1} GB of working memory ({detail}), more than \
+         the {available_gb:.1} GB available; lower them"
+    )]
+    TooMuchMemory {
+        needed_gb: f64,
+        available_gb: f64,
+        detail: String,
+    },
+
     /// A column is constant, so it cannot be standardized.
     #[error(
         "column \"{column}\" is constant ({value}) in the reference rows, so it cannot be \

@@ -40,6 +40,36 @@ fn advise_huge_pages(start: *const u8, bytes: usize) {
 #[cfg(not(target_os = "linux"))]
 fn advise_huge_pages(_start: *const u8, _bytes: usize) {}
 
+/// Bytes of memory available for new work: `MemAvailable` of `/proc/meminfo` on Linux, and
+/// 8 GiB where it cannot be read (a conservative guess for a workstation).
+pub(crate) fn available_bytes() -> u64 {
+    const FALLBACK: u64 = 8 << 30;
+    std::fs::read_to_string("/proc/meminfo")
+        .ok()
+        .and_then(|text| {
+            text.lines()
+                .find(|l| l.starts_with("MemAvailable:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|kb| kb.parse::<u64>().ok())
+        })
+        .map_or(FALLBACK, |kb| kb.saturating_mul(1024))
+}
+
+/// Refuses work that needs more than the available memory: `needed` bytes (saturating
+/// arithmetic, so absurd settings are refused rather than overflowing), `detail` naming
+/// the settings behind it.
+pub(crate) fn check_need(needed: u128, detail: impl FnOnce() -> String) -> crate::Result<()> {
+    let available = available_bytes();
+    if needed > u128::from(available) {
+        return Err(crate::Error::TooMuchMemory {
+            needed_gb: needed as f64 / 1e9,
+            available_gb: available as f64 / 1e9,
+            detail: detail(),
+        });
+    }
+    Ok(())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

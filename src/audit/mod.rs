@@ -93,6 +93,40 @@ pub struct Auditor<'a> {
     kinds: Option<FeatureKinds>,
 }
 
+/// Refuses settings whose rows in flight would not fit in memory. Per row: the deletion
+/// and replacement inputs (`masks x (1 + draws)` rows of `d` values, the empty coalition's
+/// extra draws included), the path points of every baseline candidate (`steps + 1` per
+/// draw of `uniform:N` / `reference:N`), each held about three times over (the inputs,
+/// their embedding, the scoring's work); one row per thread at a time.
+fn check_working_memory(settings: &AuditSettings, d: usize, masks: usize) -> Result<()> {
+    let rows_of = |spec: &BaselineSpec| -> u128 {
+        match spec {
+            BaselineSpec::Uniform(n) | BaselineSpec::Reference(n) => *n as u128,
+            _ => 1,
+        }
+    };
+    let path_rows: u128 = match &settings.baseline {
+        BaselineChoice::Fixed(spec) => rows_of(spec),
+        BaselineChoice::Best(list) => list.iter().map(rows_of).fold(0, u128::saturating_add),
+    };
+    let masked = (masks as u128).saturating_mul((settings.draws as u128).saturating_add(2));
+    let path = (settings.steps as u128)
+        .saturating_add(1)
+        .saturating_mul(path_rows);
+    let per_row = masked
+        .saturating_add(path)
+        .saturating_mul(d as u128)
+        .saturating_mul(8 * 3);
+    let threads = rayon::current_num_threads() as u128;
+    crate::memory::check_need(per_row.saturating_mul(threads), || {
+        format!(
+            "--samples {} with --draws {}, --steps {} over {path_rows} baseline path(s), {d} \
+             features, {threads} rows at a time",
+            settings.samples, settings.draws, settings.steps
+        )
+    })
+}
+
 /// Purposes of the per-row random streams.
 #[derive(Clone, Copy)]
 enum Stream {
@@ -164,6 +198,7 @@ impl<'a> Auditor<'a> {
                 ),
             });
         }
+        check_working_memory(&settings, d, settings.samples.min(every))?;
         let reference = profile.feature_distribution()?;
         let deletion = Deletion::from_distribution(settings.fill, reference);
         // Image pixels keep no kinds: a pixel seen only at 0 and 1 is sparse data, not a

@@ -123,6 +123,10 @@ impl AuditSettings {
         positive("--draws", self.draws, "draw per mask")?;
         positive("--steps", self.steps, "path point")?;
         positive("--top-k", self.top_k, "group")?;
+        // The quadrature's nodes and weights come first: refuse a path too long to hold.
+        crate::memory::check_need((self.steps as u128).saturating_mul(16), || {
+            format!("--steps {} path points", self.steps)
+        })?;
         self.rule.nodes(self.steps)?;
         crate::profile::validate_alpha(self.alpha)
     }
