@@ -298,6 +298,32 @@ fn explanations_join_by_id_in_any_row_and_column_order() {
     .expect_status(0);
     let other: Vec<AuditRecord> = read_records(&d.join("o.jsonl"));
     assert_ne!(other, records[0]);
+    // The summary and the --fail-under message name rows by id.
+    let lowest = other
+        .iter()
+        .min_by(|a, b| a.reliability.total_cmp(&b.reliability))
+        .unwrap();
+    assert!(lowest.reliability < 0.7, "made-up explanations score low");
+    let named = format!("{} (row {}): ", id_of(lowest.row), lowest.row);
+    let run = audit(
+        d,
+        &[
+            "--id-column",
+            "sample",
+            "--explanations",
+            "other.csv",
+            "--fail-under",
+            "0.99",
+        ],
+    );
+    run.expect_status(3).expect_stderr(&[
+        &format!("    {named}"),
+        &format!(
+            "lowest {:.3}, {}",
+            lowest.reliability,
+            &named[..named.len() - 2]
+        ),
+    ]);
 }
 
 #[test]
