@@ -360,13 +360,14 @@ pub enum Error {
     Profile { path: PathBuf, fault: ProfileFault },
 
     /// `audit --fail-under R`: rows scored below the bar (their records were written).
-    #[error("{count} of {rows} rows have reliability below --fail-under {bar} (lowest {lowest:.3}, row {lowest_row})")]
+    #[error("{count} of {rows} rows have reliability below --fail-under {bar} (lowest {lowest:.3}, {lowest_row})")]
     BelowBar {
         count: usize,
         rows: usize,
         bar: f64,
         lowest: f64,
-        lowest_row: usize,
+        /// The lowest-scoring row: `row N`, or `ID (row N)` when rows have ids.
+        lowest_row: String,
     },
 
     /// An input does not fit the profile it is scored against.

@@ -201,7 +201,13 @@ impl<W: Write> RecordWriter<W> {
             RecordFormat::Csv => {
                 let value = serde_json::to_value(record).map_err(io::Error::other)?;
                 let mut flat = Vec::new();
-                flatten("", &value, &mut flat);
+                let groups: Option<Vec<String>> = value.get("groups").and_then(|g| {
+                    g.as_array()?
+                        .iter()
+                        .map(|n| n.as_str().map(str::to_string))
+                        .collect()
+                });
+                flatten("", &value, groups.as_deref(), &mut flat);
                 if self.csv_columns.is_none() {
                     let names: Vec<String> = flat.iter().map(|(k, _)| k.clone()).collect();
                     write_csv_line(&mut self.out, names.iter().map(String::as_str))?;
@@ -225,7 +231,13 @@ impl<W: Write> RecordWriter<W> {
     }
 }
 
-fn flatten(prefix: &str, value: &Value, out: &mut Vec<(String, Value)>) {
+/// Per-group lists: in a record with `groups`, their cells are named by group.
+const PER_GROUP: [&str; 2] = ["attribution", "standard_errors"];
+
+/// Flattens nested fields into `a.b.c` columns. A record's `groups` (its group names)
+/// name the cells of its per-group lists, so that `families.deletion.attribution.age`
+/// means the same group in every row whatever the order of groups.
+fn flatten(prefix: &str, value: &Value, groups: Option<&[String]>, out: &mut Vec<(String, Value)>) {
     match value {
         Value::Object(map) => {
             for (k, v) in map {
@@ -234,7 +246,7 @@ fn flatten(prefix: &str, value: &Value, out: &mut Vec<(String, Value)>) {
                 } else {
                     format!("{prefix}.{k}")
                 };
-                flatten(&key, v, out);
+                flatten(&key, v, groups, out);
             }
         }
         Value::Array(items) if items.iter().all(Value::is_string) => {
@@ -244,14 +256,21 @@ fn flatten(prefix: &str, value: &Value, out: &mut Vec<(String, Value)>) {
             out.push((prefix.to_string(), Value::String(joined.join(" | "))));
         }
         Value::Array(items) if items.iter().all(|v| !v.is_object() && !v.is_array()) => {
-            // A list of scalars (an attribution vector) becomes one cell per element.
+            // A list of scalars (an attribution vector) becomes one cell per element,
+            // named by group where it is a per-group list.
+            let last = prefix.rsplit('.').next().unwrap_or(prefix);
+            let names = groups.filter(|g| g.len() == items.len() && PER_GROUP.contains(&last));
             for (i, v) in items.iter().enumerate() {
-                out.push((format!("{prefix}.{i}"), v.clone()));
+                let key = match names {
+                    Some(names) => format!("{prefix}.{}", names[i]),
+                    None => format!("{prefix}.{i}"),
+                };
+                out.push((key, v.clone()));
             }
         }
         Value::Array(items) => {
             for (i, v) in items.iter().enumerate() {
-                flatten(&format!("{prefix}.{i}"), v, out);
+                flatten(&format!("{prefix}.{i}"), v, groups, out);
             }
         }
         other => out.push((prefix.to_string(), other.clone())),
@@ -303,6 +322,22 @@ mod tests {
         assert_eq!(
             text,
             "row,families.deletion.rate,reasons\n0,0.5,\"a, b\"\n1,1.0,\n"
+        );
+    }
+
+    #[test]
+    fn csv_names_per_group_cells_by_group() {
+        let mut w = RecordWriter::new(Vec::new(), RecordFormat::Csv);
+        w.write(&json!({
+            "groups": ["age", "b,c"],
+            "f": {"attribution": [1.0, 2.0], "standard_errors": [0.5, 0.25], "p_histogram": [3, 4]}
+        }))
+        .unwrap();
+        let text = String::from_utf8(w.finish().unwrap()).unwrap();
+        assert_eq!(
+            text.lines().next().unwrap(),
+            "groups,f.attribution.age,\"f.attribution.b,c\",f.standard_errors.age,\
+             \"f.standard_errors.b,c\",f.p_histogram.0,f.p_histogram.1"
         );
     }
 }

@@ -439,7 +439,11 @@ impl<'a> Auditor<'a> {
         let ranked =
             self.evaluate_baselines(row, input, target, &replaced.estimate.values, candidates)?;
         Ok(BaselineRecord {
+            schema: record::BASELINE_SCHEMA.to_string(),
             row,
+            id: None,
+            seed: self.settings.seed,
+            alpha: self.settings.alpha,
             target,
             prediction,
             recommended: ranked[0].record.name.clone(),
@@ -822,7 +826,12 @@ impl<'a> Auditor<'a> {
             );
         }
         Ok(AuditRecord {
+            schema: record::AUDIT_SCHEMA.to_string(),
             row,
+            id: None,
+            seed: self.settings.seed,
+            alpha: self.settings.alpha,
+            groups: self.groups.names().to_vec(),
             target,
             prediction,
             input_p: p[0],

@@ -125,11 +125,27 @@ pub struct SuppliedAgreement {
     pub interpolation: Agreement,
 }
 
+/// The `schema` of audit records: the record kind and the version of its layout.
+pub const AUDIT_SCHEMA: &str = "kilter.audit/2";
+/// The `schema` of baseline records.
+pub const BASELINE_SCHEMA: &str = "kilter.baseline/2";
+
 /// One audit record (SPEC: `kilter audit`).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct AuditRecord {
+    /// [`AUDIT_SCHEMA`].
+    pub schema: String,
     pub row: usize,
+    /// The row's identifier (`--id-column`), when the input has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub id: Option<String>,
+    /// The seed of the masks, draws and detectability splits (`--seed`).
+    pub seed: u64,
+    /// The significance level of off-manifold inputs (`--alpha`).
+    pub alpha: f64,
+    /// The group names, in the order of every attribution of the record.
+    pub groups: Vec<String>,
     pub target: usize,
     /// The model's score for `target` on the original input.
     pub prediction: f64,
@@ -196,7 +212,16 @@ pub struct BaselineCandidate {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct BaselineRecord {
+    /// [`BASELINE_SCHEMA`].
+    pub schema: String,
     pub row: usize,
+    /// The row's identifier (`--id-column`), when the input has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub id: Option<String>,
+    /// The seed of the draws (`--seed`).
+    pub seed: u64,
+    /// The significance level of off-manifold inputs (`--alpha`).
+    pub alpha: f64,
     pub target: usize,
     /// The model's score for `target` on the input.
     pub prediction: f64,

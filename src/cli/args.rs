@@ -261,6 +261,10 @@ pub struct AuditArgs {
     /// Also write a self-contained HTML report (inline CSS and SVG, no script).
     #[arg(long, value_name = "FILE.html")]
     pub report: Option<PathBuf>,
+    /// Also write one CSV line per row: row, id, verdict, reliability, the first
+    /// finding's code, the groups it blames and its sentence (for tickets and spreadsheets).
+    #[arg(long, value_name = "FILE.csv")]
+    pub findings: Option<PathBuf>,
     #[command(flatten)]
     pub columns: ColumnArgs,
 }

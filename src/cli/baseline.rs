@@ -12,10 +12,10 @@ use kilter::profile::Profile;
 use kilter::Result;
 
 use super::args::BaselineArgs;
-use super::audit::{attribution_settings, groups_for, image_shape, in_waves};
+use super::audit::{attribution_settings, groups_for, image_shape, in_waves, record_labels};
 use super::fit::csv_options;
 use super::predict::{load_model, model_source};
-use super::{check_report_path, write_report, Context, RecordDestination};
+use super::{check_report_path, row_id, write_report, Context, RecordDestination};
 use kilter::report::{BaselineSection, Report};
 
 pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
@@ -39,7 +39,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     check_report_path(args.report.as_deref(), &inputs, args.out.as_deref())?;
 
     let profile = Profile::load(&args.profile)?;
-    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
+    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?.keeping_ids();
     profile.check_input(input.header())?;
     let groups = groups_for(a.groups.as_deref(), image, a.patch, &profile, None)?;
     let model = load_model(&source, input.columns())?;
@@ -53,11 +53,16 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
         args.report.is_some(),
     );
     destination.write(|writer| {
-        while let Some(block) = input.next_chunk()? {
+        while let Some((block, ids)) = input.next_block()? {
             let first_row = input.rows_done() - block.nrows();
             in_waves(
                 block.nrows(),
-                |i| auditor.baseline_row(first_row + i, block.row(i), &candidates),
+                |i| {
+                    let mut record =
+                        auditor.baseline_row(first_row + i, block.row(i), &candidates)?;
+                    record.id = row_id(ids.as_deref(), i);
+                    Ok(record)
+                },
                 |record: BaselineRecord| {
                     *wins.entry(record.recommended.clone()).or_default() += 1;
                     rows += 1;
@@ -69,6 +74,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
     })?;
     let kept = emitter.finish();
     if let Some(path) = &args.report {
+        let labels = record_labels(kept.iter().map(|r| r.id.as_deref()));
         let mut report = Report::new("kilter baseline");
         report.baselines(&BaselineSection {
             title: format!("Baselines for {}", args.input.display()),
@@ -83,7 +89,7 @@ pub fn run(args: BaselineArgs, context: &Context) -> Result<()> {
                 a.seed
             ),
             records: &kept,
-            labels: None,
+            labels: labels.as_deref(),
         });
         write_report(path, &report.finish())?;
         if !context.quiet {

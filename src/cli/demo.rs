@@ -106,7 +106,13 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
     };
     let auditor = Auditor::new(&profile, &model, groups.clone(), settings.clone())?;
     let audits: Vec<AuditRecord> = (0..new.rows())
-        .map(|r| auditor.audit_row(r, new.values.row(r), None))
+        .map(|r| {
+            let record = auditor.audit_row(r, new.values.row(r), None)?;
+            Ok(AuditRecord {
+                id: Some(ids[r].clone()),
+                ..record
+            })
+        })
         .collect::<Result<_>>()?;
     write_records(&dir.join("pipe-audit.jsonl"), &audits)?;
     // The vendor's copy: the same network behind a sensor-fault fallback that no real
@@ -120,12 +126,24 @@ pub fn run(args: DemoArgs, context: &Context) -> Result<()> {
         .count();
     let vendor_auditor = Auditor::new(&profile, &vendor, groups.clone(), settings)?;
     let vendor_audits: Vec<AuditRecord> = (0..new.rows())
-        .map(|r| vendor_auditor.audit_row(r, new.values.row(r), None))
+        .map(|r| {
+            let record = vendor_auditor.audit_row(r, new.values.row(r), None)?;
+            Ok(AuditRecord {
+                id: Some(ids[r].clone()),
+                ..record
+            })
+        })
         .collect::<Result<_>>()?;
     write_records(&dir.join("pipe-audit-vendor.jsonl"), &vendor_audits)?;
     let candidates = default_candidates(false);
     let baselines: Vec<BaselineRecord> = (0..new.rows())
-        .map(|r| auditor.baseline_row(r, new.values.row(r), &candidates))
+        .map(|r| {
+            let record = auditor.baseline_row(r, new.values.row(r), &candidates)?;
+            Ok(BaselineRecord {
+                id: Some(ids[r].clone()),
+                ..record
+            })
+        })
         .collect::<Result<_>>()?;
     write_records(&dir.join("pipe-baselines.jsonl"), &baselines)?;
 

@@ -158,6 +158,11 @@ pub fn write_report(path: &Path, html: &str) -> Result<()> {
     write_atomically(path, |w| w.write_all(html.as_bytes()))
 }
 
+/// The id of the `i`-th row of a block, when the block has ids.
+pub fn row_id(ids: Option<&[String]>, i: usize) -> Option<String> {
+    ids.and_then(|ids| ids.get(i)).cloned()
+}
+
 /// Converts a record-writing failure into an error naming the destination.
 pub fn record_io(error: io::Error) -> Error {
     Error::io("<records>", error)

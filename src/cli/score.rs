@@ -10,7 +10,7 @@ use kilter::Result;
 
 use super::args::ScoreArgs;
 use super::fit::csv_options;
-use super::{record_io, Context, RecordDestination};
+use super::{record_io, row_id, Context, RecordDestination};
 
 /// Rows scored per batch: bounds the intermediate distance and neighbour arrays.
 const CHUNK_ROWS: usize = 8192;
@@ -24,14 +24,14 @@ pub fn run(args: ScoreArgs, _context: &Context) -> Result<()> {
         load: started.elapsed(),
         ..Phases::default()
     };
-    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?;
+    let mut input = MatrixChunks::open(&args.input, &csv_options(&args.columns))?.keeping_ids();
     profile.check_input(input.header())?;
     // Records go out as each block of the input is scored, so memory holds the profile
     // and one block, whatever the input's length.
     destination.write(|writer| {
         loop {
             let clock = Instant::now();
-            let Some(block) = input.next_chunk()? else {
+            let Some((block, ids)) = input.next_block()? else {
                 break;
             };
             phases.read += clock.elapsed();
@@ -41,7 +41,8 @@ pub fn run(args: ScoreArgs, _context: &Context) -> Result<()> {
                 let records = profile.score(chunk, first_row + c * CHUNK_ROWS, args.alpha)?;
                 phases.score += clock.elapsed();
                 let clock = Instant::now();
-                for record in records {
+                for (i, mut record) in records.into_iter().enumerate() {
+                    record.id = row_id(ids.as_deref(), c * CHUNK_ROWS + i);
                     writer.write(&record).map_err(record_io)?;
                 }
                 phases.write += clock.elapsed();

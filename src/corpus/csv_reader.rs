@@ -1,5 +1,5 @@
 //! CSV input: a header row, numeric feature columns, optional id and label columns that
-//! are dropped. Quoted fields, a UTF-8 byte-order mark and CRLF line ends are accepted.
+//! are dropped from the features (the first id column's cells can be kept as row ids). Quoted fields, a UTF-8 byte-order mark and CRLF line ends are accepted.
 //!
 //! The file is read in blocks of a few megabytes, so memory stays bounded whatever its
 //! length. While no quote character has been seen, every line is a record and every comma
@@ -33,6 +33,9 @@ const QUOTED_CHUNK_ROWS: usize = 16_384;
 
 type Source = Box<dyn Read + Send>;
 
+/// What a parallel task makes of its lines: values, ids, rows, and its first bad row.
+type TaskRows = (Vec<f64>, Vec<String>, usize, Option<Error>);
+
 /// A CSV matrix read a block at a time.
 pub(super) struct CsvChunks {
     columns: Columns,
@@ -51,6 +54,10 @@ struct Columns {
     features: Vec<usize>,
     /// Missing cells read as NaN rather than refused.
     keep_missing: bool,
+    /// Position among `names` of the first `--id-column`.
+    id_column: Option<usize>,
+    /// Whether rows' ids are kept ([`CsvChunks::keep_ids`]).
+    keep_ids: bool,
 }
 
 enum Mode {
@@ -70,6 +77,12 @@ impl CsvChunks {
     /// See [`super::MatrixChunks::keeping_missing`].
     pub(super) fn keep_missing(&mut self) {
         self.columns.keep_missing = true;
+    }
+
+    /// See [`super::MatrixChunks::keeping_ids`]. False when there is no id column.
+    pub(super) fn keep_ids(&mut self) -> bool {
+        self.columns.keep_ids = self.columns.id_column.is_some();
+        self.columns.keep_ids
     }
 
     /// See [`super::MatrixChunks::with_block_bytes`].
@@ -98,6 +111,8 @@ impl CsvChunks {
                 names: Vec::new(),
                 features: Vec::new(),
                 keep_missing: false,
+                id_column: None,
+                keep_ids: false,
             },
             block_bytes: BLOCK_BYTES,
             rows_done: 0,
@@ -128,6 +143,10 @@ impl CsvChunks {
             };
         }
         chunks.columns.features = select_features(path, &chunks.columns.names, options)?;
+        chunks.columns.id_column = options
+            .id_columns
+            .first()
+            .and_then(|id| chunks.columns.names.iter().position(|n| n == id));
         Ok(chunks)
     }
 
@@ -146,9 +165,9 @@ impl CsvChunks {
         self.rows_done
     }
 
-    /// The next block's rows as row-major values (a multiple of the feature count), or
-    /// `None` at the end of the file.
-    pub(super) fn next_chunk(&mut self) -> Result<Option<Vec<f64>>> {
+    /// The next block's rows as row-major values (a multiple of the feature count) with
+    /// their ids (empty unless ids are kept), or `None` at the end of the file.
+    pub(super) fn next_chunk(&mut self) -> Result<Option<(Vec<f64>, Vec<String>)>> {
         loop {
             match &mut self.mode {
                 Mode::Lines {
@@ -181,10 +200,10 @@ impl CsvChunks {
                         }
                     };
                     let block: Vec<u8> = pending.drain(..cut).collect();
-                    let (values, rows) = self.columns.parse_lines(&block, self.rows_done)?;
+                    let (values, ids, rows) = self.columns.parse_lines(&block, self.rows_done)?;
                     self.rows_done += rows;
                     if rows > 0 {
-                        return Ok(Some(values));
+                        return Ok(Some((values, ids)));
                     }
                 }
                 Mode::Quoted(reader) => {
@@ -202,17 +221,20 @@ impl CsvChunks {
                     }
                     let columns = &self.columns;
                     let first = self.rows_done;
-                    let parsed: Vec<Result<Vec<f64>>> = batch
+                    let parsed: Vec<Result<(Vec<f64>, Option<String>)>> = batch
                         .par_iter()
                         .enumerate()
                         .map(|(i, record)| columns.parse_cells(record.iter(), first + i + 1))
                         .collect();
                     let mut values = Vec::with_capacity(batch.len() * columns.features.len());
+                    let mut ids = Vec::new();
                     for row in parsed {
-                        values.extend_from_slice(&row?);
+                        let (row, id) = row?;
+                        values.extend_from_slice(&row);
+                        ids.extend(id);
                     }
                     self.rows_done += batch.len();
-                    return Ok(Some(values));
+                    return Ok(Some((values, ids)));
                 }
                 Mode::Done => return Ok(None),
             }
@@ -232,7 +254,11 @@ impl CsvChunks {
 impl Columns {
     /// Parses a block of whole lines in parallel; blank lines are skipped. The first bad
     /// row is reported with its number in the file.
-    fn parse_lines(&self, block: &[u8], rows_done: usize) -> Result<(Vec<f64>, usize)> {
+    fn parse_lines(
+        &self,
+        block: &[u8],
+        rows_done: usize,
+    ) -> Result<(Vec<f64>, Vec<String>, usize)> {
         let mut tasks = Vec::new();
         let mut start = 0;
         while start < block.len() {
@@ -246,12 +272,13 @@ impl Columns {
             tasks.push(&block[start..end]);
             start = end;
         }
-        // Each task: its rows' values, its row count, and its first bad row (local number,
-        // counted from 1, with the error made for that local number).
-        let parsed: Vec<(Vec<f64>, usize, Option<Error>)> = tasks
+        // Each task: its rows' values and ids, its row count, and its first bad row (local
+        // number, counted from 1, with the error made for that local number).
+        let parsed: Vec<TaskRows> = tasks
             .par_iter()
             .map(|task| {
                 let mut values = Vec::with_capacity(task.len() / 8);
+                let mut ids = Vec::new();
                 let mut rows = 0usize;
                 for line in task.split(|&b| b == b'\n') {
                     let line = trim_cr(line);
@@ -260,31 +287,37 @@ impl Columns {
                     }
                     rows += 1;
                     match self.parse_cells(line.split(|&b| b == b','), rows) {
-                        Ok(row) => values.extend_from_slice(&row),
-                        Err(error) => return (values, rows, Some(error)),
+                        Ok((row, id)) => {
+                            values.extend_from_slice(&row);
+                            ids.extend(id);
+                        }
+                        Err(error) => return (values, ids, rows, Some(error)),
                     }
                 }
-                (values, rows, None)
+                (values, ids, rows, None)
             })
             .collect();
         let total: usize = parsed.iter().map(|p| p.0.len()).sum();
         let mut values = Vec::with_capacity(total);
+        let mut ids = Vec::new();
         let mut rows_before = rows_done;
-        for (task_values, rows, failure) in parsed {
+        for (task_values, task_ids, rows, failure) in parsed {
             if let Some(error) = failure {
                 return Err(shift_row(error, rows_before));
             }
             values.extend_from_slice(&task_values);
+            ids.extend(task_ids);
             rows_before += rows;
         }
-        Ok((values, rows_before - rows_done))
+        Ok((values, ids, rows_before - rows_done))
     }
 
+    /// A row's feature values, and its id when ids are kept.
     fn parse_cells<'a>(
         &self,
         cells: impl Iterator<Item = &'a [u8]>,
         row: usize,
-    ) -> Result<Vec<f64>> {
+    ) -> Result<(Vec<f64>, Option<String>)> {
         let cells: Vec<&[u8]> = cells.collect();
         let width = self.names.len();
         if cells.len() != width {
@@ -317,7 +350,11 @@ impl Columns {
                 }
             }
         }
-        Ok(out)
+        let id = match self.id_column {
+            Some(c) if self.keep_ids => Some(String::from_utf8_lossy(cells[c]).trim().to_string()),
+            _ => None,
+        };
+        Ok((out, id))
     }
 }
 
@@ -477,10 +514,32 @@ mod tests {
         )?;
         chunks.block_bytes = block;
         let mut values = Vec::new();
-        while let Some(chunk) = chunks.next_chunk()? {
+        while let Some((chunk, ids)) = chunks.next_chunk()? {
+            assert!(ids.is_empty(), "ids are kept only when asked");
             values.extend(chunk);
         }
         Ok((chunks.feature_names(), values))
+    }
+
+    /// Every row's id, read with blocks of `block` bytes.
+    fn ids_in_blocks(text: &[u8], block: usize) -> Vec<String> {
+        let mut chunks = CsvChunks::new(
+            Path::new("t.csv"),
+            Box::new(Cursor::new(text.to_vec())),
+            &CsvOptions {
+                id_columns: vec!["id".into(), "b".into()],
+                label_columns: vec![],
+            },
+        )
+        .unwrap();
+        assert!(chunks.keep_ids());
+        chunks.block_bytes = block;
+        let mut all = Vec::new();
+        while let Some((values, ids)) = chunks.next_chunk().unwrap() {
+            assert_eq!(ids.len(), values.len(), "one id per row (one feature left)");
+            all.extend(ids);
+        }
+        all
     }
 
     fn table(rows: usize, quoted_from: Option<usize>, line_end: &str) -> String {
@@ -512,6 +571,25 @@ mod tests {
                         values, expected,
                         "block {block}, quoted from {quoted_from:?}"
                     );
+                }
+            }
+        }
+    }
+
+    /// The first id column's cells, unquoted, stay with their rows across blocks.
+    #[test]
+    fn ids_follow_their_rows_across_blocks() {
+        for line_end in ["\n", "\r\n"] {
+            for quoted_from in [None, Some(0), Some(150)] {
+                let text = table(200, quoted_from, line_end);
+                let expected: Vec<String> = (0..200)
+                    .map(|r| match quoted_from {
+                        Some(q) if r >= q => format!("r,{r}"),
+                        _ => format!("r{r}"),
+                    })
+                    .collect();
+                for block in [1, 7, 64, 1 << 20] {
+                    assert_eq!(ids_in_blocks(text.as_bytes(), block), expected);
                 }
             }
         }

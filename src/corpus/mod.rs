@@ -129,6 +129,9 @@ impl MatrixFormat {
     }
 }
 
+/// A block of rows, one input per row, with the rows' ids when the file has them.
+pub type Block = (Array2<f64>, Option<Vec<String>>);
+
 /// Values `read_all` reserves before any row has been read (16 MB).
 const PREALLOCATED_VALUES: usize = 1 << 21;
 
@@ -143,6 +146,8 @@ pub struct MatrixChunks {
     named: bool,
     source: PathBuf,
     reader: Reader,
+    /// Whether blocks come with their rows' ids.
+    ids: bool,
 }
 
 impl MatrixChunks {
@@ -176,6 +181,7 @@ impl MatrixChunks {
             named,
             source: path.to_path_buf(),
             reader,
+            ids: false,
         })
     }
 
@@ -202,6 +208,23 @@ impl MatrixChunks {
             Reader::Npy(npy) => npy.keep_missing(),
         }
         self
+    }
+
+    /// Keeps the cells of the first `--id-column` as row ids, which [`next_block`] hands
+    /// out with their rows. Ignored when the file has no id column (`.npy`, or a CSV read
+    /// without `--id-column`).
+    ///
+    /// [`next_block`]: MatrixChunks::next_block
+    pub fn keeping_ids(mut self) -> Self {
+        if let Reader::Csv(csv) = &mut self.reader {
+            self.ids = csv.keep_ids();
+        }
+        self
+    }
+
+    /// Whether rows come with ids ([`MatrixChunks::keeping_ids`] on a file that has them).
+    pub fn has_ids(&self) -> bool {
+        self.ids
     }
 
     /// The names and origin of the columns.
@@ -237,17 +260,22 @@ impl MatrixChunks {
     /// The next block of rows, or `None` after the last. A file without any data row is
     /// an error here, at its end.
     pub fn next_chunk(&mut self) -> Result<Option<Array2<f64>>> {
+        Ok(self.next_block()?.map(|(values, _)| values))
+    }
+
+    /// The next block of rows with their ids (`Some` when [`MatrixChunks::has_ids`]), or
+    /// `None` after the last.
+    pub fn next_block(&mut self) -> Result<Option<Block>> {
         let values = match &mut self.reader {
             Reader::Csv(csv) => csv.next_chunk()?,
-            Reader::Npy(npy) => npy.next_chunk()?,
+            Reader::Npy(npy) => npy.next_chunk()?.map(|v| (v, Vec::new())),
         };
         match values {
-            Some(values) => {
+            Some((values, ids)) => {
                 let rows = values.len() / self.names.len();
-                Ok(Some(
-                    Array2::from_shape_vec((rows, self.names.len()), values)
-                        .expect("readers return whole rows"),
-                ))
+                let values = Array2::from_shape_vec((rows, self.names.len()), values)
+                    .expect("readers return whole rows");
+                Ok(Some((values, self.ids.then_some(ids))))
             }
             None if self.rows_done() == 0 => Err(Error::NoRows {
                 path: self.source.clone(),

@@ -130,6 +130,9 @@ pub struct Profile {
 pub struct ScoreRecord {
     /// 0-based input row.
     pub row: usize,
+    /// The row's identifier (`--id-column`), when the input has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub id: Option<String>,
     /// Squared Mahalanobis distance from the fitted mean, embedded space.
     pub mahalanobis_d2: f64,
     /// Upper chi-square tail of `mahalanobis_d2`, df = embedded dimension.
@@ -521,6 +524,7 @@ impl Profile {
         Ok((0..rows.nrows())
             .map(|i| ScoreRecord {
                 row: first_row + i,
+                id: None,
                 mahalanobis_d2: s.mahalanobis_d2[i],
                 chi2_p: chi_square_tail(s.mahalanobis_d2[i], df),
                 knn_kth: s.knn_kth[i],

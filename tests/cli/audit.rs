@@ -570,8 +570,9 @@ fn csv_records_flatten_families_and_join_reasons() {
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
     for column in [
         "row",
-        "families.deletion.attribution.0",
-        "families.deletion.attribution.4",
+        // Attribution columns are named by group (here a feature's name).
+        "families.deletion.attribution.mean_radius",
+        "families.deletion.attribution.mean_smoothness",
         "families.replacement.off_manifold_rate",
         "families.interpolation.completeness_gap",
         "agreement.deletion~replacement.spearman",

@@ -17,6 +17,7 @@ mod families;
 mod golden;
 mod groups;
 mod hostile;
+mod identity;
 mod inputs;
 mod interrupt;
 mod kinds;
