@@ -176,6 +176,12 @@ impl Report {
                 b.push_str("</ul>");
             }
             b.push_str("</div><div class=\"panel\"><h4>Baselines of the path</h4>");
+            if !r.families.interpolation.applicable {
+                b.push_str(
+                    "<p class=\"small\">Integrated gradients do not apply to this model \
+                     (piecewise-constant); the ranking is shown for completeness.</p>",
+                );
+            }
             b.push_str(&candidate_table(&r.families.interpolation.candidates));
             b.push_str("</div></div></article>");
         }
@@ -361,7 +367,7 @@ fn attribution_chart(r: &AuditRecord, names: &[String]) -> String {
 /// distribution (a bin's width: conformal p-values are uniform on data like the reference).
 fn p_value_chart(r: &AuditRecord) -> String {
     let f = &r.families;
-    let series = [
+    let mut series = vec![
         (
             "deletion",
             DELETION,
@@ -374,13 +380,15 @@ fn p_value_chart(r: &AuditRecord) -> String {
             &f.replacement.p_histogram,
             f.replacement.off_manifold_rate,
         ),
-        (
+    ];
+    if f.interpolation.applicable {
+        series.push((
             "interpolation",
             INTERPOLATION,
             &f.interpolation.p_histogram,
             f.interpolation.off_manifold_rate,
-        ),
-    ];
+        ));
+    }
     let bins = P_BINS.len() - 1;
     let (left, bin_w, plot_h) = (40.0, 54.0, 120.0);
     let width = left + bin_w * bins as f64 + 10.0;
@@ -450,6 +458,9 @@ fn p_value_chart(r: &AuditRecord) -> String {
         .map(|(name, _, _, rate)| format!("{name} {:.0}%", 100.0 * rate))
         .collect();
     svg.push_str(&parts.join(", "));
+    if !f.interpolation.applicable {
+        svg.push_str("; interpolation not applicable to this model");
+    }
     svg.push_str("</p>");
     svg
 }
