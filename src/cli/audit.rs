@@ -429,8 +429,16 @@ impl SuppliedFile {
             _ => {
                 let chunks = MatrixChunks::open(&self.path, &self.options)?;
                 if chunks.columns() != groups.len() {
-                    let rows = chunks.rows_hint().unwrap_or(0);
-                    check_supplied(rows, chunks.columns(), rows, groups.len(), &self.path)?;
+                    // The row count is not known yet (CSV is streamed): name the columns.
+                    return Err(Error::InputMismatch {
+                        path: self.path.clone(),
+                        detail: format!(
+                            "has {} value columns; the audit needs one column per group ({}): {}",
+                            chunks.columns(),
+                            groups.len(),
+                            groups.join(", ")
+                        ),
+                    });
                 }
                 Ok(SuppliedRows::InOrder(InOrderRows {
                     chunks,
